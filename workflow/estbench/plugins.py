@@ -1,0 +1,73 @@
+"""Find user and built-in callables named ``module:callable``.
+
+Modules are looked for in the folder of the study file first, then in the
+checkout's ``estimators/`` folder, then on the normal import path.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import importlib
+import importlib.util
+import inspect
+import sys
+from pathlib import Path
+from typing import Callable, Iterable
+
+
+def search_path(study_dir: Path | str | None) -> list[str]:
+    """Folders searched for estimator modules, in order."""
+    from .paths import BUILTIN_ESTIMATORS
+    dirs = [Path(study_dir).resolve()] if study_dir is not None else []
+    return [str(d) for d in [*dirs, BUILTIN_ESTIMATORS]]
+
+
+def _with_path(dirs: Iterable[str]):
+    for d in reversed(list(dirs)):
+        if d not in sys.path:
+            sys.path.insert(0, d)
+
+
+def resolve(ref: str, dirs: Iterable[str]) -> Callable:
+    """Import ``module:callable`` with *dirs* searched first.
+
+    Raises ``ImportError`` (module missing or failing to import) or
+    ``AttributeError``/``TypeError`` (no such callable) with a plain message.
+    """
+    module_name, _, attr = ref.partition(":")
+    _with_path(dirs)
+    try:
+        module = importlib.import_module(module_name)
+    except ModuleNotFoundError as exc:
+        if exc.name and module_name.startswith(exc.name):
+            raise ImportError(f"no module {module_name!r} beside the study file, in estimators/ "
+                              f"or on the Python path") from None
+        raise ImportError(f"module {module_name!r} failed to import: {exc}") from None
+    except Exception as exc:  # a user module with a bug: report it, don't crash
+        raise ImportError(f"module {module_name!r} failed to import: "
+                          f"{type(exc).__name__}: {exc}") from None
+    fn = getattr(module, attr, None)
+    if fn is None:
+        raise AttributeError(f"module {module_name!r} has no attribute {attr!r}")
+    if not callable(fn):
+        raise TypeError(f"{ref} is not callable")
+    return fn
+
+
+def module_file(ref: str, dirs: Iterable[str]) -> Path:
+    """Source file of the module in ``module:callable`` (after importing it)."""
+    fn = resolve(ref, dirs)
+    return Path(inspect.getsourcefile(sys.modules[fn.__module__])).resolve()
+
+
+def code_hash(path: Path | str) -> str:
+    """Short SHA-256 of a source file's bytes: which code produced a shard."""
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()[:16]
+
+
+def accepts(fn: Callable, name: str) -> bool:
+    """Does *fn* declare a parameter called *name*? (``**kwargs`` does not count.)"""
+    try:
+        return name in inspect.signature(fn).parameters
+    except (TypeError, ValueError):
+        return False
