@@ -1,0 +1,191 @@
+"""The DuckDB store: the single source of truth for everything the report shows.
+
+Only ``ingest`` writes it, inside one transaction: a killed or failed ingest
+leaves the previous store as it was. Ingest is idempotent: a shard whose bytes
+are unchanged is skipped, a rewritten shard replaces its rows, a shard the
+study no longer names loses its rows. Everything else opens it read-only.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import time
+from pathlib import Path
+from typing import Iterable
+
+import duckdb
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from . import plugins
+from .dgms import DISTRIBUTION_ESTIMANDS, build_dgm
+from .errors import UserError
+from .measures import compute_performance
+from .scenarios import canonical_json
+from .shard import SHARD_SCHEMA, read_metadata
+from .study import Study
+
+_DDL = """
+CREATE TABLE IF NOT EXISTS study (
+    name VARCHAR, description VARCHAR, seed VARCHAR, replicates BIGINT,
+    replicates_run BIGINT, block_size BIGINT, blocks_per_job BIGINT, n_blocks BIGINT,
+    level DOUBLE, reference VARCHAR, targets VARCHAR, study_yaml VARCHAR, ingested_at VARCHAR);
+CREATE TABLE IF NOT EXISTS scenarios (
+    scenario VARCHAR PRIMARY KEY, dgm VARCHAR, n BIGINT, spec VARCHAR, swept VARCHAR,
+    dgm_description VARCHAR, position BIGINT);
+CREATE TABLE IF NOT EXISTS truths (scenario VARCHAR, estimand VARCHAR, value DOUBLE);
+CREATE TABLE IF NOT EXISTS estimators (
+    estimator VARCHAR PRIMARY KEY, function VARCHAR, target VARCHAR, args VARCHAR,
+    description VARCHAR, code_hash VARCHAR, is_reference BOOLEAN, position BIGINT);
+CREATE TABLE IF NOT EXISTS shards (
+    path VARCHAR PRIMARY KEY, scenario VARCHAR, estimator VARCHAR, first_block BIGINT,
+    n_blocks BIGINT, rows BIGINT, bytes BIGINT, sha256 VARCHAR, ingested_at VARCHAR);
+CREATE TABLE IF NOT EXISTS provenance (
+    path VARCHAR PRIMARY KEY, seed VARCHAR, scenario_spawn_key VARCHAR, function VARCHAR,
+    code_hash VARCHAR, estbench VARCHAR, numpy VARCHAR, scipy VARCHAR, pyarrow VARCHAR,
+    python VARCHAR, seconds DOUBLE, created VARCHAR);
+CREATE TABLE IF NOT EXISTS estimates (
+    scenario VARCHAR, estimator VARCHAR, block BIGINT, rep BIGINT, estimate DOUBLE,
+    se DOUBLE, ci_low DOUBLE, ci_high DOUBLE, p_value DOUBLE, status VARCHAR, message VARCHAR);
+CREATE TABLE IF NOT EXISTS performance (
+    scenario VARCHAR, estimator VARCHAR, measure VARCHAR, value DOUBLE, mcse DOUBLE,
+    n_ok BIGINT, n_failed BIGINT);
+CREATE OR REPLACE VIEW truth AS
+    SELECT t.scenario, e.estimator, t.value AS truth
+    FROM truths t JOIN estimators e ON t.estimand = e.target;
+"""
+
+
+def sha256_file(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def open_read_only(store: Path | str) -> duckdb.DuckDBPyConnection:
+    """Open the store for reading; a clear ``UserError`` if it is missing or busy."""
+    store = Path(store)
+    if not store.exists():
+        raise UserError(f"no store at {store}: run `estbench run` first")
+    try:
+        return duckdb.connect(str(store), read_only=True)
+    except duckdb.IOException as exc:
+        if "lock" in str(exc).lower():
+            raise UserError(f"the store {store} is being written by another process; "
+                            f"try again when it finishes") from None
+        raise UserError(f"cannot open the store {store}: {exc}") from None
+
+
+def _check_shard(path: Path, study: Study) -> dict:
+    """Metadata of a shard that is readable and whole; ``UserError`` otherwise."""
+    try:
+        meta = read_metadata(path)
+        rows = pq.ParquetFile(path).metadata.num_rows
+    except Exception as exc:
+        raise UserError(f"shard {path} is unreadable ({type(exc).__name__}: {exc}); "
+                        f"delete it and run again to recompute it") from None
+    expected = meta["n_blocks"] * study.block_size
+    if rows != expected or meta["rows"] != expected:
+        raise UserError(f"shard {path} holds {rows} rows, expected {expected}; "
+                        f"delete it and run again to recompute it")
+    return meta
+
+
+def _sql_str(path) -> str:
+    return str(path).replace("'", "''")
+
+
+def _write_study_tables(con, study: Study) -> None:
+    import yaml
+    now = time.strftime("%Y-%m-%dT%H:%M:%S%z")
+    for table in ("study", "scenarios", "truths", "estimators"):
+        con.execute(f"DELETE FROM {table}")
+    con.execute("INSERT INTO study VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)", [
+        study.name, study.description, str(study.seed), study.replicates, study.replicates_run,
+        study.block_size, study.blocks_per_job, study.n_blocks, study.level, study.reference,
+        json.dumps(study.targets), yaml.safe_dump(dict(study.raw), sort_keys=False), now])
+    scen_rows, truth_rows = [], []
+    for pos, s in enumerate(study.scenarios):
+        scen_rows.append([s.key, s.dgm, s.n, canonical_json(s.spec), json.dumps(s.swept),
+                          study.dgms[s.dgm].get("description", ""), pos])
+        dgm = build_dgm(s.spec)
+        truth_rows += [[s.key, e, dgm.truth(e)] for e in DISTRIBUTION_ESTIMANDS]
+    con.executemany("INSERT INTO scenarios VALUES (?,?,?,?,?,?,?)", scen_rows)
+    con.executemany("INSERT INTO truths VALUES (?,?,?)", truth_rows)
+    est_rows = []
+    for pos, e in enumerate(study.estimators.values()):
+        source = plugins.module_file(e.function, study.search_dirs)
+        est_rows.append([e.name, e.function, e.target, canonical_json(e.args), e.description,
+                         plugins.code_hash(source), e.name == study.reference, pos])
+    con.executemany("INSERT INTO estimators VALUES (?,?,?,?,?,?,?,?)", est_rows)
+
+
+def ingest(store: Path | str, study: Study, shards: Iterable[Path | str]) -> dict:
+    """Bring the store up to date with *shards* and recompute the measures.
+
+    Returns counts: shards added, replaced, removed and unchanged, and rows.
+    """
+    store = Path(store)
+    shards = [Path(p) for p in shards]
+    wanted = {str(p): p for p in shards}
+    digests = {str(p): sha256_file(p) for p in shards}
+    store.parent.mkdir(parents=True, exist_ok=True)
+    con = duckdb.connect(str(store))
+    try:
+        con.execute(_DDL)
+        con.execute("BEGIN TRANSACTION")
+        known = dict(con.execute("SELECT path, sha256 FROM shards").fetchall())
+        stale = [p for p, digest in known.items() if digests.get(p) != digest]
+        fresh = [p for p in wanted if known.get(p) != digests[p]]
+        if stale:
+            con.execute("CREATE TEMP TABLE stale AS SELECT scenario, estimator, first_block, "
+                        "first_block + n_blocks AS end_block, path FROM shards "
+                        "WHERE list_contains(?, path)", [stale])
+            con.execute("DELETE FROM estimates USING stale s WHERE estimates.scenario = s.scenario "
+                        "AND estimates.estimator = s.estimator AND estimates.block >= s.first_block "
+                        "AND estimates.block < s.end_block")
+            con.execute("DELETE FROM shards WHERE list_contains(?, path)", [stale])
+            con.execute("DELETE FROM provenance WHERE list_contains(?, path)", [stale])
+            con.execute("DROP TABLE stale")
+        now = time.strftime("%Y-%m-%dT%H:%M:%S%z")
+        for p in sorted(fresh):
+            path = wanted[p]
+            meta = _check_shard(path, study)
+            columns = ", ".join(SHARD_SCHEMA.names)
+            con.execute(f"INSERT INTO estimates SELECT {columns} FROM read_parquet('{_sql_str(path)}')")
+            con.execute("INSERT INTO shards VALUES (?,?,?,?,?,?,?,?,?)", [
+                p, meta["scenario"], meta["estimator"], meta["first_block"], meta["n_blocks"],
+                meta["rows"], path.stat().st_size, digests[p], now])
+            v = meta["versions"]
+            con.execute("INSERT INTO provenance VALUES (?,?,?,?,?,?,?,?,?,?,?,?)", [
+                p, meta["seed"], meta["scenario_spawn_key"], meta["function"], meta["code_hash"],
+                v["estbench"], v["numpy"], v["scipy"], v["pyarrow"], v["python"], meta["seconds"],
+                meta["created"]])
+        _write_study_tables(con, study)
+        con.execute("DELETE FROM performance")
+        perf = compute_performance(con, "estimates", "truth")
+        con.register("perf_in", perf)
+        con.execute("INSERT INTO performance SELECT * FROM perf_in")
+        con.unregister("perf_in")
+        rows = con.execute("SELECT count(*) FROM estimates").fetchone()[0]
+        con.execute("COMMIT")
+    except BaseException:
+        con.close()
+        raise
+    con.execute("CHECKPOINT")
+    con.close()
+    return {"added": len([p for p in fresh if p not in known]), "replaced": len([p for p in fresh if p in known]),
+            "removed": len([p for p in stale if p not in wanted]),
+            "unchanged": len(wanted) - len(fresh), "rows": rows}
+
+
+def read_table(store: Path | str, sql: str, params=None) -> pa.Table:
+    """Run one read-only query against the store and return an Arrow table."""
+    con = open_read_only(store)
+    try:
+        return con.execute(sql, params or []).to_arrow_table()
+    finally:
+        con.close()
