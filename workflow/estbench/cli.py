@@ -1,0 +1,171 @@
+"""The ``estbench`` command: run, check, status, report, query.
+
+User errors print one clear line per problem and exit with status 2; bugs
+keep their traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+from . import __version__
+from .errors import StudyError, UserError
+from .paths import DEFAULT_STUDY, SNAKEFILE, results_dir, store_path
+
+EXIT_USER_ERROR = 2
+
+
+def _study_arg(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("study", nargs="?", type=Path, default=DEFAULT_STUDY,
+                        help=f"study file (default: {DEFAULT_STUDY})")
+
+
+def _load(path: Path):
+    from .study import load_study
+    return load_study(path)
+
+
+def cmd_check(args) -> int:
+    study = _load(args.study)
+    n_jobs = len(study.scenarios) * len(study.estimators) * len(study.job_first_blocks())
+    print(f"study {study.name!r} is valid: {len(study.dgms)} DGM(s), {len(study.scenarios)} scenario(s), "
+          f"{len(study.estimators)} estimator(s), {study.replicates_run} replicates per scenario "
+          f"({study.n_blocks} seed block(s) of {study.block_size}), {n_jobs} shard job(s)")
+    return 0
+
+
+def snakemake_command(study_file: Path, cores: int, extra: list[str]) -> list[str]:
+    """The Snakemake call behind ``estbench run``."""
+    return [sys.executable, "-m", "snakemake", "--snakefile", str(SNAKEFILE),
+            "--directory", os.getcwd(), "--configfile", str(study_file.resolve()),
+            "--cores", str(cores), "--scheduler", "greedy", "--rerun-incomplete", *extra]
+
+
+def cmd_run(args) -> int:
+    study = _load(args.study)
+    cmd = snakemake_command(args.study, args.cores, args.snakemake_args)
+    code = subprocess.call(cmd)
+    if code == 0:
+        out = results_dir(study.name)
+        print(f"estbench: done. Report: {out / 'report.html'}  Measures: {out / 'performance.csv'}")
+    return 0 if code == 0 else 1
+
+
+def cmd_status(args) -> int:
+    from . import jobs
+    study = _load(args.study)
+    shards = jobs.shard_paths(study)
+    done = sum(p.exists() for p in shards)
+    print(f"study {study.name!r}: {done} of {len(shards)} shards done, {len(shards) - done} to do")
+    store = store_path(study.name)
+    if not store.exists():
+        print("store: not created yet")
+        return 0
+    from .store import read_table
+    table = read_table(store, """
+        SELECT estimator, count(DISTINCT scenario) AS scenarios, count(*) AS replicates,
+               count(*) FILTER (WHERE status <> 'ok') AS failed
+        FROM estimates GROUP BY estimator ORDER BY estimator""")
+    print(f"store {store}:")
+    for row in table.to_pylist():
+        print(f"  {row['estimator']}: {row['replicates']} replicates in {row['scenarios']} scenario(s), "
+              f"{row['failed']} failed")
+    return 0
+
+
+def cmd_report(args) -> int:
+    from .report import render
+    study = _load(args.study)
+    out = results_dir(study.name)
+    render(store_path(study.name), out / "report.html", out / "performance.csv")
+    print(f"estbench: wrote {out / 'report.html'} and {out / 'performance.csv'} from the store")
+    return 0
+
+
+def cmd_query(args) -> int:
+    import duckdb
+    import pyarrow.csv as pacsv
+    from .store import open_read_only
+    study = _load(args.study)
+    con = open_read_only(store_path(study.name))
+    try:
+        table = con.execute(args.sql).to_arrow_table()
+    except duckdb.Error as exc:
+        raise UserError(f"query failed: {str(exc).splitlines()[0]}") from None
+    finally:
+        con.close()
+    pacsv.write_csv(table, sys.stdout.buffer)
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="estbench",
+        description="Run simulation studies of estimators: shards -> DuckDB store -> report.")
+    parser.add_argument("--version", action="version", version=f"estbench {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    p = sub.add_parser("run", help="run the whole study (simulate, ingest, report)",
+                       description="Run the study through Snakemake; results go to ./results/<study>/. "
+                                   "Finished shards are kept, so running again resumes.")
+    _study_arg(p)
+    p.add_argument("--cores", type=int, default=os.cpu_count() or 1,
+                   help="cores to use (default: all, here %(default)s)")
+    p.add_argument("snakemake_args", nargs=argparse.REMAINDER,
+                   help="after --, extra arguments passed to Snakemake unchanged")
+    p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("check", help="validate a study file and say what it would run",
+                       description="Validate the study file (schema and meaning) without running anything.")
+    _study_arg(p)
+    p.set_defaults(func=cmd_check)
+
+    p = sub.add_parser("status", help="shards done and to do, replicates in the store",
+                       description="Count finished shards and the replicates already in the store.")
+    _study_arg(p)
+    p.set_defaults(func=cmd_status)
+
+    p = sub.add_parser("report", help="re-render report.html and performance.csv from the store",
+                       description="Render the report and CSV from the store alone; simulates nothing.")
+    _study_arg(p)
+    p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser("query", help="read-only SQL against the store, CSV to stdout",
+                       description="Run one read-only SQL query against the study's store. Tables: study, "
+                                   "scenarios, truths, estimators, shards, provenance, estimates, performance.")
+    p.add_argument("sql", help="the SQL query")
+    p.add_argument("--study", type=Path, default=DEFAULT_STUDY,
+                   help=f"study file (default: {DEFAULT_STUDY})")
+    p.set_defaults(func=cmd_query)
+    return parser
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if getattr(args, "snakemake_args", None) and args.snakemake_args[0] == "--":
+        args.snakemake_args = args.snakemake_args[1:]
+    try:
+        return args.func(args)
+    except StudyError as exc:
+        n = len(exc.problems)
+        where = getattr(args, "study", None)
+        print(f"estbench: the study file {where} has {n} problem{'s' if n != 1 else ''}:", file=sys.stderr)
+        for line in exc.problems:
+            print(f"  {line}", file=sys.stderr)
+        return EXIT_USER_ERROR
+    except UserError as exc:
+        for line in exc.problems:
+            print(f"estbench: {line}", file=sys.stderr)
+        return EXIT_USER_ERROR
+    except KeyboardInterrupt:
+        print("estbench: interrupted; run the same command again to resume", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

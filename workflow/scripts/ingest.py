@@ -1,0 +1,10 @@
+"""Ingest rule: load new or changed shards into the store and recompute measures."""
+import json
+from pathlib import Path
+
+from estbench.store import ingest
+from estbench.study import study_from_mapping
+
+study = study_from_mapping(snakemake.config, source=Path(snakemake.input.study))  # noqa: F821
+summary = ingest(snakemake.output[0], study, snakemake.input.shards)  # noqa: F821
+Path(snakemake.log[0]).write_text(json.dumps(summary) + "\n")  # noqa: F821
