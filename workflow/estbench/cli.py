@@ -93,7 +93,7 @@ def cmd_query(args) -> int:
     study = _load(args.study)
     con = open_read_only(store_path(study.name))
     try:
-        table = con.execute(args.sql).to_arrow_table()
+        table = con.sql(args.sql).to_arrow_table()
     except duckdb.Error as exc:
         raise UserError(f"query failed: {str(exc).splitlines()[0]}") from None
     finally:

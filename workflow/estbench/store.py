@@ -186,6 +186,6 @@ def read_table(store: Path | str, sql: str, params=None) -> pa.Table:
     """Run one read-only query against the store and return an Arrow table."""
     con = open_read_only(store)
     try:
-        return con.execute(sql, params or []).to_arrow_table()
+        return con.sql(sql, params=params).to_arrow_table()
     finally:
         con.close()

@@ -1,0 +1,54 @@
+"""Shared fixtures: tiny study files and the estbench CLI run as users run it."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import yaml
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def tiny_study(**overrides) -> dict:
+    """A study small enough to run through Snakemake in seconds."""
+    study = {
+        "study": "tiny",
+        "description": "Field survey of plot yields (invented, for tests).",
+        "seed": 12345,
+        "replicates": 60,
+        "block_size": 10,
+        "blocks_per_job": 3,
+        "sample_sizes": [5, 20],
+        "dgms": {"normal": {"distribution": "norm", "params": {"loc": 2.0, "scale": 1.5}}},
+        "estimators": {
+            "mean": {"function": "location:mean", "target": "mean"},
+            "median": {"function": "location:median", "target": "mean"},
+        },
+        "reference": "mean",
+    }
+    study.update(overrides)
+    return study
+
+
+def write_study(directory: Path, study: dict, name: str = "study.yaml") -> Path:
+    path = Path(directory) / name
+    path.write_text(yaml.safe_dump(study, sort_keys=False))
+    return path
+
+
+def run_cli(*args, cwd: Path, check: bool = False, timeout: float = 300) -> subprocess.CompletedProcess:
+    """Run ``estbench ARGS`` in *cwd* the way a user does, capturing output."""
+    proc = subprocess.run([sys.executable, "-m", "estbench.cli", *map(str, args)], cwd=cwd,
+                          capture_output=True, text=True, timeout=timeout)
+    if check and proc.returncode != 0:
+        raise AssertionError(f"estbench {' '.join(map(str, args))} failed ({proc.returncode}):\n"
+                             f"{proc.stdout}\n{proc.stderr}")
+    return proc
+
+
+@pytest.fixture
+def study_dir(tmp_path) -> Path:
+    return tmp_path

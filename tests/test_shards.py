@@ -1,0 +1,129 @@
+"""Shards: bit-identical whatever the grouping, paired across estimators, errors as data."""
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from estbench import jobs
+from estbench.dgms import build_dgm
+from estbench.estimator import per_replicate
+from estbench.seeding import block_generator
+from estbench.shard import compute_shard, read_metadata, run_shard
+from estbench.study import study_from_mapping
+
+from conftest import tiny_study, write_study
+
+
+def _study(tmp_path, **overrides):
+    if "estimators" in overrides:
+        overrides.setdefault("reference", next(iter(overrides["estimators"])))
+    raw = tiny_study(**overrides)
+    return study_from_mapping(raw, source=write_study(tmp_path, raw))
+
+
+def _estimates_by_grouping(study, scenario, estimator):
+    tables = [compute_shard(jobs.shard_spec(study, scenario, estimator, b), study.search_dirs)
+              for b in study.job_first_blocks()]
+    return pa.concat_tables(tables)
+
+
+@pytest.mark.parametrize("blocks_per_job", [1, 3, 6])
+def test_estimates_identical_for_any_blocks_per_job(tmp_path, blocks_per_job):
+    base = _study(tmp_path, blocks_per_job=6)
+    other = _study(tmp_path, blocks_per_job=blocks_per_job)
+    s = base.scenarios[1].key
+    for est in ("mean", "median"):
+        a = _estimates_by_grouping(base, s, est)
+        b = _estimates_by_grouping(other, s, est)
+        assert a.num_rows == b.num_rows == 60
+        assert a.column("estimate").to_numpy().tobytes() == b.column("estimate").to_numpy().tobytes()
+        assert a.column("rep").to_pylist() == list(range(60))
+
+
+def test_adding_scenarios_and_estimators_changes_no_existing_spec(tmp_path):
+    before = _study(tmp_path)
+    grown = tiny_study(sample_sizes=[5, 20, 50])
+    grown["dgms"]["heavy"] = {"distribution": "t", "params": {"df": 4}}
+    grown["estimators"]["trim"] = {"function": "location:trimmed_mean", "target": "mean",
+                                   "args": {"proportion": 0.2}}
+    after = study_from_mapping(grown, source=write_study(tmp_path, grown, "grown.yaml"))
+    for s in before.scenarios:
+        for e in before.estimators:
+            for b in before.job_first_blocks():
+                assert jobs.shard_spec_json(before, s.key, e, b) == jobs.shard_spec_json(after, s.key, e, b)
+
+
+def test_every_estimator_sees_the_same_datasets(tmp_path):
+    (tmp_path / "probe.py").write_text(
+        "def first(x):\n    return x[:, 0]\n\ndef last(x):\n    return x[:, -1]\n")
+    study = _study(tmp_path, estimators={
+        "first": {"function": "probe:first", "target": "mean"},
+        "last": {"function": "probe:last", "target": "mean"}})
+    s = study.scenarios[0]
+    first = _estimates_by_grouping(study, s.key, "first").column("estimate").to_numpy()
+    last = _estimates_by_grouping(study, s.key, "last").column("estimate").to_numpy()
+    dgm = build_dgm(s.spec)
+    data = np.concatenate([dgm.draw(block_generator(study.seed, s.spawn_key, b), 10, s.n)
+                           for b in range(study.n_blocks)])
+    np.testing.assert_array_equal(first, data[:, 0])
+    np.testing.assert_array_equal(last, data[:, -1])
+
+
+def test_failures_are_recorded_not_raised(tmp_path):
+    (tmp_path / "flaky.py").write_text(
+        "import numpy as np\n"
+        "from estbench.estimator import per_replicate\n"
+        "def always_fails(x):\n    raise RuntimeError('singular fit')\n"
+        "def nan_when_low(x):\n    m = x.mean(axis=1)\n    return np.where(m < 2, np.nan, m)\n"
+        "@per_replicate\n"
+        "def one_at_a_time(row):\n"
+        "    if row[0] < 2:\n        raise ValueError('first reading below 2')\n"
+        "    return float(row.mean())\n")
+    study = _study(tmp_path, estimators={
+        "bad": {"function": "flaky:always_fails", "target": "mean"},
+        "nan": {"function": "flaky:nan_when_low", "target": "mean"},
+        "loop": {"function": "flaky:one_at_a_time", "target": "mean"}})
+    s = study.scenarios[0]
+    bad = _estimates_by_grouping(study, s.key, "bad")
+    assert set(bad.column("status").to_pylist()) == {"error"}
+    assert bad.column("message")[0].as_py() == "RuntimeError: singular fit"
+    nan = _estimates_by_grouping(study, s.key, "nan")
+    est = nan.column("estimate").to_numpy(zero_copy_only=False)
+    status = np.array(nan.column("status").to_pylist())
+    assert np.array_equal(status == "nonfinite", np.isnan(est)) and 0 < (status == "nonfinite").sum() < 60
+    loop = _estimates_by_grouping(study, s.key, "loop")
+    dgm = build_dgm(s.spec)
+    data = np.concatenate([dgm.draw(block_generator(study.seed, s.spawn_key, b), 10, s.n)
+                           for b in range(study.n_blocks)])
+    lstatus = np.array(loop.column("status").to_pylist())
+    np.testing.assert_array_equal(lstatus == "error", data[:, 0] < 2)
+    ok = lstatus == "ok"
+    np.testing.assert_allclose(loop.column("estimate").to_numpy(zero_copy_only=False)[ok],
+                               data[ok].mean(axis=1), rtol=1e-15)
+    assert set(loop.column("message").filter(pa.array(~ok)).to_pylist()) == {"ValueError: first reading below 2"}
+
+
+def test_wrong_output_length_marks_the_block(tmp_path):
+    (tmp_path / "short.py").write_text("def short(x):\n    return x[:3, 0]\n")
+    study = _study(tmp_path, estimators={"short": {"function": "short:short", "target": "mean"}})
+    table = _estimates_by_grouping(study, study.scenarios[0].key, "short")
+    assert set(table.column("status").to_pylist()) == {"error"}
+    assert "expected (10,)" in table.column("message")[0].as_py()
+
+
+def test_shard_file_is_atomic_and_carries_provenance(tmp_path):
+    study = _study(tmp_path)
+    s = study.scenarios[0]
+    out = tmp_path / "out" / "0.parquet"
+    spec = jobs.shard_spec(study, s.key, "mean", 0)
+    run_shard(spec, study.search_dirs, out)
+    assert [p.name for p in out.parent.iterdir()] == ["0.parquet"]  # no temp file left
+    meta = read_metadata(out)
+    assert meta["seed"] == "12345" and meta["scenario_spawn_key"] == str(s.spawn_key)
+    assert meta["rows"] == 30 and meta["n_blocks"] == 3 and len(meta["code_hash"]) == 16
+    assert set(meta["versions"]) >= {"estbench", "numpy", "scipy"} and meta["seconds"] > 0
+    table = pq.read_table(out)
+    assert table.column_names == ["scenario", "estimator", "block", "rep", "estimate", "se",
+                                  "ci_low", "ci_high", "p_value", "status", "message"]
+    assert table.column("se").null_count == 0  # location:mean gives an SE

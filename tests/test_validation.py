@@ -1,0 +1,97 @@
+"""Bad study files: one clear line naming the key and the rule, exit 2, nothing written."""
+
+import pytest
+
+from conftest import run_cli, tiny_study, write_study
+
+
+def _bad(**changes):
+    study = tiny_study()
+    for key, value in changes.items():
+        if value is DELETE:
+            study.pop(key)
+        else:
+            study[key] = value
+    return study
+
+
+DELETE = object()
+
+CASES = {
+    "unknown key": (_bad(replicats=100), "`replicats`: unknown key"),
+    "unknown distribution": (
+        _bad(dgms={"normal": {"distribution": "gaussian", "params": {}}}),
+        "`dgms.normal.distribution`: scipy.stats has no distribution 'gaussian'"),
+    "zero n": (_bad(sample_sizes=[5, 0]), "`sample_sizes[1]`: must be >= 1, got 0"),
+    "negative n": (_bad(sample_sizes=[-3]), "`sample_sizes[0]`: must be >= 1, got -3"),
+    "non-integer replicates": (_bad(replicates=10.5), "`replicates`: must be an integer, got 10.5"),
+    "level above 1": (_bad(level=1.5), "`level`: must be < 1, got 1.5"),
+    "level zero": (_bad(level=0), "`level`: must be > 0, got 0"),
+    "estimator not importable": (
+        _bad(estimators={"mean": {"function": "nosuchmodule:mean", "target": "mean"}}),
+        "`estimators.mean.function`: cannot use 'nosuchmodule:mean': no module 'nosuchmodule'"),
+    "callable missing": (
+        _bad(estimators={"mean": {"function": "location:nosuch", "target": "mean"}}),
+        "`estimators.mean.function`: cannot use 'location:nosuch': module 'location' has no attribute 'nosuch'"),
+    "estimand the DGM cannot supply": (
+        _bad(dgms={"wild": {"distribution": "cauchy", "params": {}}}),
+        "`estimators.mean.target`: DGM 'wild' cannot supply the estimand 'mean' (it supplies: median)"),
+    "study name with slash": (_bad(study="a/b"), "`study`: may contain only letters, digits"),
+    "study name with dots": (_bad(study=".."), "`study`: may contain only letters, digits"),
+    "bad distribution parameter": (
+        _bad(dgms={"normal": {"distribution": "norm", "params": {"scale": [1, -2]}}}),
+        "`dgms.normal.params.scale[1]`: scipy.stats.norm rejects the parameters"),
+    "missing key": (_bad(seed=DELETE), "`seed`: required key is missing"),
+    "unknown reference": (_bad(reference="mode"), "`reference`: 'mode' is not one of the estimators"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_bad_study_is_refused_with_a_clear_line(tmp_path, case):
+    study, expected = CASES[case]
+    path = write_study(tmp_path, study)
+    for verb in ("check", "run"):
+        proc = run_cli(verb, path, cwd=tmp_path)
+        assert proc.returncode == 2, proc.stderr
+        assert expected in proc.stderr, proc.stderr
+        assert "Traceback" not in proc.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["study.yaml"]  # nothing written
+
+
+def test_malformed_yaml_names_the_line(tmp_path):
+    path = tmp_path / "study.yaml"
+    path.write_text("study: x\nseed: [1, 2\nreplicates: 3\n")
+    proc = run_cli("run", path, cwd=tmp_path)
+    assert proc.returncode == 2 and "is not valid YAML at line" in proc.stderr
+    assert "Traceback" not in proc.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["study.yaml"]
+
+
+def test_duplicate_yaml_key_is_refused(tmp_path):
+    path = tmp_path / "study.yaml"
+    path.write_text("study: x\nseed: 1\nseed: 2\n")
+    proc = run_cli("check", path, cwd=tmp_path)
+    assert proc.returncode == 2 and "duplicate key 'seed'" in proc.stderr
+
+
+def test_every_problem_is_reported_at_once(tmp_path):
+    path = write_study(tmp_path, _bad(replicates=0, level=2, colour="blue", sample_sizes=[0]))
+    proc = run_cli("check", path, cwd=tmp_path)
+    assert proc.returncode == 2
+    assert "has 4 problems" in proc.stderr
+    for key in ("`replicates`", "`level`", "`colour`", "`sample_sizes[0]`"):
+        assert key in proc.stderr
+
+
+def test_missing_study_file_and_missing_store(tmp_path):
+    proc = run_cli("check", tmp_path / "nope.yaml", cwd=tmp_path)
+    assert proc.returncode == 2 and "cannot read study file" in proc.stderr
+    path = write_study(tmp_path, tiny_study())
+    proc = run_cli("report", path, cwd=tmp_path)
+    assert proc.returncode == 2 and "no store at" in proc.stderr and "Traceback" not in proc.stderr
+
+
+def test_check_summarises_a_valid_study(tmp_path):
+    proc = run_cli("check", write_study(tmp_path, tiny_study()), cwd=tmp_path, check=True)
+    assert "2 scenario(s), 2 estimator(s), 60 replicates per scenario (6 seed block(s) of 10), " \
+           "8 shard job(s)" in proc.stdout
