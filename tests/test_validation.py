@@ -43,6 +43,13 @@ CASES = {
         "`dgms.normal.params.scale[1]`: scipy.stats.norm rejects the parameters"),
     "missing key": (_bad(seed=DELETE), "`seed`: required key is missing"),
     "unknown reference": (_bad(reference="mode"), "`reference`: 'mode' is not one of the estimators"),
+    "bad DGM name": (_bad(dgms={"a b": {"distribution": "norm"}}),
+                     "`dgms`: key 'a b' must start with a letter"),
+    "YAML null as an argument name": (
+        _bad(estimators={"mean": {"function": "location:mean", "target": "mean", "args": {None: 1}}}),
+        "`estimators.mean.args`: key None must be a Python identifier"),
+    "unknown target measure": (_bad(targets={"bias": 0.1, "speed": 1}),
+                               "`targets`: key 'speed' must be one of"),
 }
 
 

@@ -132,6 +132,18 @@ def build_context(con) -> dict:
                 "alt": (f"Log-log plots of absolute bias, empirical SE and RMSE against n for "
                         f"{title}, one line per estimator, with MCSE error bars."),
             })
+    dgms = {}
+    for s in scenarios:
+        d = dgms.setdefault(s["dgm"], {"dgm": s["dgm"], "description": s["dgm_description"],
+                                       "specs": [], "n": [], "keys": 0})
+        spec = json.loads(s["spec"])
+        if spec not in d["specs"]:
+            d["specs"].append(spec)
+        if s["n"] not in d["n"]:
+            d["n"].append(s["n"])
+        d["keys"] += 1
+    for d in dgms.values():
+        d["specs"] = [json.dumps(spec, sort_keys=True) for spec in d["specs"]]
     provenance = _fetch_dicts(con, """
         SELECT count(*) AS shards, sum(seconds) AS seconds, min(created) AS first,
                max(created) AS last, string_agg(DISTINCT numpy, ', ') AS numpy,
@@ -142,7 +154,7 @@ def build_context(con) -> dict:
         SELECT count(*) AS rows, count(*) FILTER (WHERE status <> 'ok') AS failed
         FROM estimates""")[0]
     return {
-        "study": study, "scenarios": scenarios, "estimators": estimators, "colour": colour,
+        "study": study, "scenarios": scenarios, "dgms": list(dgms.values()), "estimators": estimators, "colour": colour,
         "measures": measures, "tables": tables, "figures": figures, "provenance": provenance,
         "counts": counts, "targets": json.loads(study["targets"] or "{}"),
         "estbench_version": __version__, "fmt": fmt_number,

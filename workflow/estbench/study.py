@@ -78,7 +78,7 @@ def key_path(parts) -> str:
 
 def _rule_text(err: jsonschema.ValidationError) -> str:
     v, s, inst = err.validator, err.schema, err.instance
-    if "x-rule" in s and v in ("pattern", "oneOf", "enum"):
+    if "x-rule" in s:
         return f"{s['x-rule']}, got {inst!r}"
     if v == "type":
         want = s["type"] if isinstance(s["type"], str) else " or ".join(s["type"])
@@ -113,11 +113,9 @@ def schema_problems(raw: Any, schema: dict | None = None) -> list[str]:
         elif err.validator == "required":
             missing = err.message.split("'")[1]
             problems.append(f"`{key_path(path + [missing])}`: required key is missing")
-        elif err.validator == "propertyNames":
-            bad = err.instance if isinstance(err.instance, str) else "?"
-            sub = err.schema.get("propertyNames", {})
-            rule = sub.get("x-rule", "is not an allowed name")
-            problems.append(f"`{key_path(path)}`: name {bad!r} {rule}")
+        elif "propertyNames" in err.schema_path:
+            rule = err.schema.get("x-rule", "is not an allowed name")
+            problems.append(f"`{key_path(path)}`: key {err.instance!r} {rule}")
         else:
             problems.append(f"`{key_path(path)}`: {_rule_text(err)}")
     return sorted(set(problems))
