@@ -1,22 +1,70 @@
-"""Scale estimators, vectorised over replicates (axis 0 = replicates, axis 1 = observations)."""
+"""Scale estimators, vectorised over replicates (axis 0 = replicates, axis 1 = observations).
+
+| function | estimate | interval | p-value |
+|---|---|---|---|
+| ``variance`` | SS / (n-1), SS / n or SS / (n+1) | chi-square (normal theory) for sigma^2 | chi-square test of sigma^2 = ``null``, if given |
+| ``sd`` | sqrt of ``variance`` | square root of the variance interval | the same test for sigma = ``null`` |
+| ``mad`` | median absolute deviation / Phi^-1(3/4) | — | — |
+| ``iqr_sd`` | interquartile range / (2 Phi^-1(3/4)) | — | — |
+
+A scale of 0 is not a testable null, so these take ``null=None`` (no p-value)
+rather than the library's usual 0. MAD and IQR have no SE here: the standard
+ones need a density estimate at quantiles.
+"""
 
 from __future__ import annotations
 
 import numpy as np
+from scipy import stats
+
+from _inference import check_level, replicates
 
 _DIVISORS = {"n-1": -1, "n": 0, "n+1": 1}
+#: Phi^-1(3/4): the MAD, and half the IQR, of a standard normal distribution.
+_NORMAL_QUARTILE = stats.norm.ppf(0.75)
 
 
-def variance(x, divisor="n-1"):
-    """Sum of squared deviations from the sample mean, divided by n-1, n or n+1."""
+def variance(x, divisor="n-1", level=0.95, null=None):
+    """Sum of squared deviations from the sample mean, divided by n-1, n or n+1.
+
+    The interval [SS / chi2_{(1+level)/2}, SS / chi2_{(1-level)/2}] on n-1
+    degrees of freedom is exact for normal data whatever the divisor; with a
+    positive ``null`` the p-value is the two-sided (doubled tail) chi-square
+    test of sigma^2 = ``null``.
+    """
     if divisor not in _DIVISORS:
         raise ValueError(f"divisor must be one of {', '.join(_DIVISORS)}, got {divisor!r}")
-    x = np.asarray(x, dtype=float)
+    check_level(level)
+    if null is not None and not null > 0:
+        raise ValueError(f"`null` must be a positive variance or None, got {null!r}.")
+    x = replicates(x)
+    n = x.shape[1]
     ss = ((x - x.mean(axis=1, keepdims=True)) ** 2).sum(axis=1)
+    chi2 = stats.chi2(n - 1)
     with np.errstate(invalid="ignore", divide="ignore"):
-        return ss / (x.shape[1] + _DIVISORS[divisor])
+        out = {"estimate": ss / (n + _DIVISORS[divisor]),
+               "ci_low": ss / chi2.ppf(0.5 + level / 2), "ci_high": ss / chi2.ppf(0.5 - level / 2)}
+        if null is not None:
+            out["p_value"] = np.minimum(1, 2 * np.minimum(chi2.cdf(ss / null), chi2.sf(ss / null)))
+    return out
 
 
-def sd(x, divisor="n-1"):
-    """Square root of ``variance(x, divisor)``."""
-    return np.sqrt(variance(x, divisor))
+def sd(x, divisor="n-1", level=0.95, null=None):
+    """Square root of ``variance(x, divisor)``, its interval and its test (of sigma = ``null``)."""
+    if null is not None and not null > 0:
+        raise ValueError(f"`null` must be a positive standard deviation or None, got {null!r}.")
+    out = variance(x, divisor, level, None if null is None else null ** 2)
+    return {name: (value if name == "p_value" else np.sqrt(value)) for name, value in out.items()}
+
+
+def mad(x):
+    """Median absolute deviation from the median, divided by Phi^-1(3/4) to estimate sigma at the normal."""
+    x = replicates(x)
+    return np.median(np.abs(x - np.median(x, axis=1, keepdims=True)), axis=1) / _NORMAL_QUARTILE
+
+
+def iqr_sd(x):
+    """Interquartile range (numpy's linear quantiles) divided by 2 Phi^-1(3/4) to estimate sigma at the normal."""
+    x = replicates(x)
+    q1, q3 = np.quantile(x, [0.25, 0.75], axis=1)
+    return (q3 - q1) / (2 * _NORMAL_QUARTILE)
