@@ -65,8 +65,8 @@ def trimmed_mean(x, proportion=0.1, level=0.95, null=0.0):
 
     SE = s_w / ((1 - 2 proportion) sqrt(n)), s_w the SD of the sample Winsorized
     at the same g, with a t(n - 2g - 1) interval and test (Tukey & McLaughlin
-    1963; Wilcox 2012, Introduction to Robust Estimation, section 4.4; the same
-    as ``scipy.stats.mstats.trimmed_mean_ci``).
+    1963, as given by Wilcox 2012, Introduction to Robust Estimation and
+    Hypothesis Testing, from memory; the same as ``scipy.stats.mstats.trimmed_mean_ci``).
     """
     x = replicates(x)
     g, winsorized = _winsorize(x, proportion)
