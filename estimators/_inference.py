@@ -55,8 +55,8 @@ def check_binary(arr, name):
         raise ValueError(f"`{name}` must hold only 0 and 1, found {bad!r}.")
 
 
-def wald_fields(estimate, se, level, null, dist):
-    """estimate ± q·se and the two-sided p-value of (estimate − null)/se.
+def wald_fields(estimate, se, level, null_value, dist):
+    """estimate ± q·se and the two-sided p-value of (estimate − null_value)/se.
 
     ``dist`` is the reference distribution of the standardised estimate, e.g.
     ``scipy.stats.t(df)`` (``df`` may be an array, one per replicate) or
@@ -65,13 +65,13 @@ def wald_fields(estimate, se, level, null, dist):
     check_level(level)
     with np.errstate(invalid="ignore", divide="ignore"):
         q = dist.ppf(0.5 + level / 2)
-        z = (estimate - null) / se
+        z = (estimate - null_value) / se
         p = 2 * dist.sf(np.abs(z))
     return {"estimate": estimate, "se": se, "ci_low": estimate - q * se,
             "ci_high": estimate + q * se, "p_value": p}
 
 
-def ols_fields(z, y, se="model", level=0.95, null=0.0):
+def ols_fields(z, y, se="model", level=0.95, null_value=0.0):
     """OLS of ``y`` on an intercept and the columns of ``z``; inference on the first column.
 
     Parameters
@@ -82,7 +82,7 @@ def ols_fields(z, y, se="model", level=0.95, null=0.0):
         (X'X)^-1 X' diag(w_i e_i^2) X (X'X)^-1 with w_i = 1, n/(n-p), 1/(1-h_i),
         1/(1-h_i)^2 (MacKinnon & White 1985; p = k + 1 coefficients, h_i the
         leverage).
-    level, null : interval level and the value of the coefficient under H0.
+    level, null_value : interval level and the value of the coefficient under H0.
 
     Returns
     -------
@@ -115,7 +115,7 @@ def ols_fields(z, y, se="model", level=0.95, null=0.0):
             scale = {"hc0": 1.0, "hc1": n / df, "hc2": 1 / (1 - leverage),
                      "hc3": 1 / (1 - leverage) ** 2}[se]
             var = (weights[..., 0] ** 2 * resid ** 2 * scale).sum(axis=1)
-        out = wald_fields(beta[:, 0], np.sqrt(var), level, null, stats.t(df))
+        out = wald_fields(beta[:, 0], np.sqrt(var), level, null_value, stats.t(df))
     for value in out.values():
         value[singular] = np.nan
     return out

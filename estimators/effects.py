@@ -3,7 +3,7 @@
 Data: {"y": (reps, n), "arm": (reps, n) of 0/1 with 1 = treatment, and for
 ``ancova`` "covariate": (reps, n) measured at baseline}. Arm sizes may vary
 between replicates. Each function gives estimate, se, a t interval and the
-two-sided t-test p-value of effect = ``null``; a replicate with too few
+two-sided t-test p-value of effect = ``null_value``; a replicate with too few
 patients for its variance estimate gives NaN (Welch needs two per arm,
 pooled two in all with one per arm).
 
@@ -22,25 +22,25 @@ from scipy import stats
 from _inference import check_binary, ols_fields, structured, wald_fields
 
 
-def welch(data, level=0.95, null=0.0):
+def welch(data, level=0.95, null_value=0.0):
     """Difference in means with Welch's unequal-variance SE and Welch-Satterthwaite df."""
     diff, (n1, ss1), (n0, ss0) = _arms(data)
     with np.errstate(invalid="ignore", divide="ignore"):
         a1, a0 = ss1 / (n1 - 1) / n1, ss0 / (n0 - 1) / n0
         df = (a1 + a0) ** 2 / (a1 ** 2 / (n1 - 1) + a0 ** 2 / (n0 - 1))
-    return wald_fields(diff, np.sqrt(a1 + a0), level, null, stats.t(df))
+    return wald_fields(diff, np.sqrt(a1 + a0), level, null_value, stats.t(df))
 
 
-def pooled(data, level=0.95, null=0.0):
+def pooled(data, level=0.95, null_value=0.0):
     """Difference in means with the pooled-variance (Student) SE and n - 2 df."""
     diff, (n1, ss1), (n0, ss0) = _arms(data)
     with np.errstate(invalid="ignore", divide="ignore"):
         df = n1 + n0 - 2
         se = np.sqrt((ss1 + ss0) / df * (1 / n1 + 1 / n0))
-    return wald_fields(diff, se, level, null, stats.t(df))
+    return wald_fields(diff, se, level, null_value, stats.t(df))
 
 
-def ancova(data, se="model", level=0.95, null=0.0):
+def ancova(data, se="model", level=0.95, null_value=0.0):
     """Covariate-adjusted effect: the arm coefficient of OLS of y on (1, arm, covariate).
 
     ``se`` is ``"model"`` or ``"hc0"``..``"hc3"`` as in ``regression.ols_slope``;
@@ -49,7 +49,7 @@ def ancova(data, se="model", level=0.95, null=0.0):
     arrays = structured(data, ("y", "arm", "covariate"))
     check_binary(arrays["arm"], "arm")
     design = np.stack([arrays["arm"], arrays["covariate"]], axis=-1)
-    return ols_fields(design, arrays["y"], se, level, null)
+    return ols_fields(design, arrays["y"], se, level, null_value)
 
 
 def _arms(data):

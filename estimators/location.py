@@ -1,6 +1,6 @@
 """Location estimators, vectorised over replicates (axis 0 = replicates, axis 1 = observations).
 
-| function | estimate | se | interval | p-value (H0: location = ``null``) |
+| function | estimate | se | interval | p-value (H0: location = ``null_value``) |
 |---|---|---|---|---|
 | ``mean`` | sample mean | s/sqrt(n) | t(n-1) | t-test |
 | ``median`` | sample median | — | order statistics, distribution-free | sign test |
@@ -27,23 +27,23 @@ _CHUNK_ELEMENTS = 2 ** 22
 _MAD_NORMAL = stats.norm.ppf(0.75)
 
 
-def mean(x, level=0.95, null=0.0):
+def mean(x, level=0.95, null_value=0.0):
     """Sample mean with its standard error, t interval and two-sided t-test p-value.
 
     Parameters
     ----------
     x : array (reps, n)
     level : confidence level of the interval.
-    null : value of the mean under the null hypothesis of the t-test.
+    null_value : value of the mean under the null hypothesis of the t-test.
     """
     x = replicates(x)
     n = x.shape[1]
     with np.errstate(invalid="ignore", divide="ignore"):
         se = x.std(axis=1, ddof=1) / np.sqrt(n)
-    return wald_fields(x.mean(axis=1), se, level, null, stats.t(n - 1))
+    return wald_fields(x.mean(axis=1), se, level, null_value, stats.t(n - 1))
 
 
-def median(x, level=0.95, null=0.0):
+def median(x, level=0.95, null_value=0.0):
     """Sample median, distribution-free interval and sign test.
 
     The interval is [x_(k), x_(n+1-k)] with the largest k whose coverage
@@ -51,16 +51,16 @@ def median(x, level=0.95, null=0.0):
     continuous distribution (order-statistic interval, e.g. Conover, Practical
     Nonparametric Statistics, from memory); when even [x_(1), x_(n)] falls short
     (n < 6 at 95%) it is (-inf, inf). The p-value is the exact two-sided sign
-    test, an observation equal to ``null`` counting one half each way. No SE:
+    test, an observation equal to ``null_value`` counting one half each way. No SE:
     every standard one needs a density estimate at the median.
     """
     x = replicates(x)
     n = x.shape[1]
     return {"estimate": np.median(x, axis=1),
-            **_rank_inference(x, stats.binom.cdf(np.arange(n + 1), n, 0.5), level, null)}
+            **_rank_inference(x, stats.binom.cdf(np.arange(n + 1), n, 0.5), level, null_value)}
 
 
-def trimmed_mean(x, proportion=0.1, level=0.95, null=0.0):
+def trimmed_mean(x, proportion=0.1, level=0.95, null_value=0.0):
     """Mean after cutting g = floor(``proportion`` n) observations from each end.
 
     SE = s_w / ((1 - 2 proportion) sqrt(n)), s_w the SD of the sample Winsorized
@@ -73,11 +73,11 @@ def trimmed_mean(x, proportion=0.1, level=0.95, null=0.0):
     n = x.shape[1]
     with np.errstate(invalid="ignore", divide="ignore"):
         se = winsorized.std(axis=1, ddof=1) / ((1 - 2 * proportion) * np.sqrt(n))
-    return wald_fields(stats.trim_mean(x, proportion, axis=1), se, level, null,
+    return wald_fields(stats.trim_mean(x, proportion, axis=1), se, level, null_value,
                        stats.t(n - 2 * g - 1))
 
 
-def winsorized_mean(x, proportion=0.1, level=0.95, null=0.0):
+def winsorized_mean(x, proportion=0.1, level=0.95, null_value=0.0):
     """Mean after setting the g = floor(``proportion`` n) lowest (highest) values to x_(g+1) (x_(n-g)).
 
     SE = s_w (n - 1) / ((n - 2g - 1) sqrt(n)), s_w the SD of the Winsorized
@@ -89,18 +89,18 @@ def winsorized_mean(x, proportion=0.1, level=0.95, null=0.0):
     n = x.shape[1]
     with np.errstate(invalid="ignore", divide="ignore"):
         se = winsorized.std(axis=1, ddof=1) * (n - 1) / ((n - 2 * g - 1) * np.sqrt(n))
-    return wald_fields(winsorized.mean(axis=1), se, level, null, stats.t(n - 2 * g - 1))
+    return wald_fields(winsorized.mean(axis=1), se, level, null_value, stats.t(n - 2 * g - 1))
 
 
-def hodges_lehmann(x, level=0.95, null=0.0):
+def hodges_lehmann(x, level=0.95, null_value=0.0):
     """Hodges-Lehmann estimate: the median of the n(n+1)/2 Walsh averages (x_i + x_j)/2, i <= j.
 
     Interval [W_(k), W_(N+1-k)] of the ordered Walsh averages, k from the exact
     null distribution of the Wilcoxon signed-rank statistic, so coverage is at
     least ``level`` for continuous symmetric data ((-inf, inf) when n is too
     small for ``level``). The p-value is the exact two-sided signed-rank test,
-    its statistic counted as the number of Walsh averages above ``null`` (equal
-    to the signed-rank sum without ties; a Walsh average equal to ``null``
+    its statistic counted as the number of Walsh averages above ``null_value`` (equal
+    to the signed-rank sum without ties; a Walsh average equal to ``null_value``
     counts one half). Hollander & Wolfe, Nonparametric Statistical Methods,
     ch. 3 (from memory).
 
@@ -117,7 +117,7 @@ def hodges_lehmann(x, level=0.95, null=0.0):
     out = {name: np.empty(len(x)) for name in ("estimate", "ci_low", "ci_high", "p_value")}
     for rows in _chunks(len(x), len(left)):
         walsh = (x[rows, left] + x[rows, right]) / 2
-        chunk = _rank_inference(walsh, cdf, level, null, also=middle)
+        chunk = _rank_inference(walsh, cdf, level, null_value, also=middle)
         ordered = chunk.pop("ordered")
         out["estimate"][rows] = (ordered[:, middle[0]] + ordered[:, middle[1]]) / 2
         for name, value in chunk.items():
@@ -125,7 +125,7 @@ def hodges_lehmann(x, level=0.95, null=0.0):
     return out
 
 
-def huber(x, k=1.345, level=0.95, null=0.0, max_iter=100, tol=1e-10):
+def huber(x, k=1.345, level=0.95, null_value=0.0, max_iter=100, tol=1e-10):
     """Huber M-estimate of location with the scale fixed at the normal-consistent MAD.
 
     Solves sum psi((x_i - mu)/s) = 0, psi(r) = clip(r, -k, k), by iteratively
@@ -157,17 +157,17 @@ def huber(x, k=1.345, level=0.95, null=0.0, max_iter=100, tol=1e-10):
     inside = (np.abs(r) < k).mean(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         se = scale * np.sqrt((r ** 2).sum(axis=1) / (n - 1) / n) / inside
-    return wald_fields(mu, se, level, null, stats.t(n - 1))
+    return wald_fields(mu, se, level, null_value, stats.t(n - 1))
 
 
-def bootstrap_mean(x, rng, level=0.95, null=0.0, B=999):
+def bootstrap_mean(x, rng, level=0.95, null_value=0.0, B=999):
     """Sample mean with a percentile bootstrap interval from B resamples per replicate.
 
     ``rng`` is the estimator's own stream for the seed block, so the interval
     reproduces. se = SD of the B bootstrap means; the interval holds their
     (1 -/+ level)/2 quantiles (numpy's default linear interpolation); the
-    p-value inverts the percentile interval, 2 min(#{mean* <= null},
-    #{mean* >= null}) / B capped at 1 (resolution 2/B). Work memory is bounded
+    p-value inverts the percentile interval, 2 min(#{mean* <= null_value},
+    #{mean* >= null_value}) / B capped at 1 (resolution 2/B). Work memory is bounded
     by drawing the resamples for a chunk of replicates at a time.
     """
     if not isinstance(rng, np.random.Generator):
@@ -182,7 +182,7 @@ def bootstrap_mean(x, rng, level=0.95, null=0.0, B=999):
         boot[rows] = np.take_along_axis(x[rows, None, :], picks, axis=2).mean(axis=2)
     tail = (1 - level) / 2
     low, high = np.quantile(boot, [tail, 1 - tail], axis=1)
-    below, above = (boot <= null).sum(axis=1), (boot >= null).sum(axis=1)
+    below, above = (boot <= null_value).sum(axis=1), (boot >= null_value).sum(axis=1)
     return {"estimate": x.mean(axis=1), "se": boot.std(axis=1, ddof=1), "ci_low": low,
             "ci_high": high, "p_value": np.minimum(1, 2 * np.minimum(below, above) / B)}
 
@@ -197,7 +197,7 @@ def _winsorize(x, proportion):
     return g, np.clip(x, bounds[:, g:g + 1], bounds[:, n - 1 - g:n - g])
 
 
-def _rank_inference(values, cdf, level, null, also=()):
+def _rank_inference(values, cdf, level, null_value, also=()):
     """Distribution-free interval and p-value from the order statistics of each row.
 
     ``cdf`` is the null cdf, on 0..M (M = row length), of a statistic symmetric
@@ -205,7 +205,7 @@ def _rank_inference(values, cdf, level, null, also=()):
     statistic for observations, the signed-rank sum for Walsh averages). The
     interval is [v_(k), v_(M+1-k)] (1-based) with the largest k whose coverage
     1 - 2 cdf[k-1] reaches ``level``, or (-inf, inf) if none does. The p-value
-    doubles the smaller tail of the count, a value equal to ``null`` counting
+    doubles the smaller tail of the count, a value equal to ``null_value`` counting
     one half. With ``also``, the row partitioned at those 0-based ranks too
     comes back as "ordered".
     """
@@ -216,7 +216,7 @@ def _rank_inference(values, cdf, level, null, also=()):
     ordered = np.partition(values, ranks, axis=1) if ranks else values
     out = {"ci_low": ordered[:, k - 1] if k else np.full(reps, -np.inf),
            "ci_high": ordered[:, m - k] if k else np.full(reps, np.inf)}
-    count = (values > null).sum(axis=1) + 0.5 * (values == null).sum(axis=1)
+    count = (values > null_value).sum(axis=1) + 0.5 * (values == null_value).sum(axis=1)
     at_most = cdf[np.floor(count).astype(int)]
     above = np.ceil(count).astype(int) - 1
     at_least = 1 - np.where(above >= 0, cdf[np.maximum(above, 0)], 0.0)

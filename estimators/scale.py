@@ -2,12 +2,12 @@
 
 | function | estimate | interval | p-value |
 |---|---|---|---|
-| ``variance`` | SS / (n-1), SS / n or SS / (n+1) | chi-square (normal theory) for sigma^2 | chi-square test of sigma^2 = ``null``, if given |
-| ``sd`` | sqrt of ``variance`` | square root of the variance interval | the same test for sigma = ``null`` |
+| ``variance`` | SS / (n-1), SS / n or SS / (n+1) | chi-square (normal theory) for sigma^2 | chi-square test of sigma^2 = ``null_value``, if given |
+| ``sd`` | sqrt of ``variance`` | square root of the variance interval | the same test for sigma = ``null_value`` |
 | ``mad`` | median absolute deviation / Phi^-1(3/4) | — | — |
 | ``iqr_sd`` | interquartile range / (2 Phi^-1(3/4)) | — | — |
 
-A scale of 0 is not a testable null, so these take ``null=None`` (no p-value)
+A scale of 0 is not a testable null_value, so these take ``null_value=None`` (no p-value)
 rather than the library's usual 0. MAD and IQR have no SE here: the standard
 ones need a density estimate at quantiles.
 """
@@ -24,19 +24,19 @@ _DIVISORS = {"n-1": -1, "n": 0, "n+1": 1}
 _NORMAL_QUARTILE = stats.norm.ppf(0.75)
 
 
-def variance(x, divisor="n-1", level=0.95, null=None):
+def variance(x, divisor="n-1", level=0.95, null_value=None):
     """Sum of squared deviations from the sample mean, divided by n-1, n or n+1.
 
     The interval [SS / chi2_{(1+level)/2}, SS / chi2_{(1-level)/2}] on n-1
     degrees of freedom is exact for normal data whatever the divisor; with a
-    positive ``null`` the p-value is the two-sided (doubled tail) chi-square
-    test of sigma^2 = ``null``.
+    positive ``null_value`` the p-value is the two-sided (doubled tail) chi-square
+    test of sigma^2 = ``null_value``.
     """
     if divisor not in _DIVISORS:
         raise ValueError(f"divisor must be one of {', '.join(_DIVISORS)}, got {divisor!r}")
     check_level(level)
-    if null is not None and not null > 0:
-        raise ValueError(f"`null` must be a positive variance or None, got {null!r}.")
+    if null_value is not None and not null_value > 0:
+        raise ValueError(f"`null_value` must be a positive variance or None, got {null_value!r}.")
     x = replicates(x)
     n = x.shape[1]
     ss = ((x - x.mean(axis=1, keepdims=True)) ** 2).sum(axis=1)
@@ -44,16 +44,16 @@ def variance(x, divisor="n-1", level=0.95, null=None):
     with np.errstate(invalid="ignore", divide="ignore"):
         out = {"estimate": ss / (n + _DIVISORS[divisor]),
                "ci_low": ss / chi2.ppf(0.5 + level / 2), "ci_high": ss / chi2.ppf(0.5 - level / 2)}
-        if null is not None:
-            out["p_value"] = np.minimum(1, 2 * np.minimum(chi2.cdf(ss / null), chi2.sf(ss / null)))
+        if null_value is not None:
+            out["p_value"] = np.minimum(1, 2 * np.minimum(chi2.cdf(ss / null_value), chi2.sf(ss / null_value)))
     return out
 
 
-def sd(x, divisor="n-1", level=0.95, null=None):
-    """Square root of ``variance(x, divisor)``, its interval and its test (of sigma = ``null``)."""
-    if null is not None and not null > 0:
-        raise ValueError(f"`null` must be a positive standard deviation or None, got {null!r}.")
-    out = variance(x, divisor, level, None if null is None else null ** 2)
+def sd(x, divisor="n-1", level=0.95, null_value=None):
+    """Square root of ``variance(x, divisor)``, its interval and its test (of sigma = ``null_value``)."""
+    if null_value is not None and not null_value > 0:
+        raise ValueError(f"`null_value` must be a positive standard deviation or None, got {null_value!r}.")
+    out = variance(x, divisor, level, None if null_value is None else null_value ** 2)
     return {name: (value if name == "p_value" else np.sqrt(value)) for name, value in out.items()}
 
 

@@ -112,19 +112,19 @@ def test_agresti_coull_contains_wilson():
 def test_score_and_exact_p_values_agree_with_scipy():
     """Score test: z^2 is Pearson's chi-square, scipy.stats.chisquare on (x, n - x).
     Central exact test: 2 min of scipy.stats.binomtest's one-sided p-values, capped at 1."""
-    n, null = 30, 0.35
+    n, null_value = 30, 0.35
     rows = _every_outcome(n)
-    wilson, exact = proportion.wilson(rows, null=null), proportion.clopper_pearson(rows, null=null)
+    wilson, exact = proportion.wilson(rows, null_value=null_value), proportion.clopper_pearson(rows, null_value=null_value)
     for x in range(n + 1):
-        ref = stats.chisquare([x, n - x], [n * null, n * (1 - null)]).pvalue
+        ref = stats.chisquare([x, n - x], [n * null_value, n * (1 - null_value)]).pvalue
         assert wilson["p_value"][x] == pytest.approx(ref, rel=1e-10, abs=1e-300)
-        tails = [stats.binomtest(x, n, null, alternative=a).pvalue for a in ("less", "greater")]
+        tails = [stats.binomtest(x, n, null_value, alternative=a).pvalue for a in ("less", "greater")]
         assert exact["p_value"][x] == pytest.approx(min(1, 2 * min(tails)), rel=1e-10)
 
 
 @pytest.mark.parametrize("fn", INTERVALS, ids=lambda f: f.__name__)
 def test_each_p_value_inverts_its_interval(fn):
-    """At null = an end of the interval the p-value is 1 - level (the test the interval
+    """At null_value = an end of the interval the p-value is 1 - level (the test the interval
     inverts); Wald and Agresti-Coull ends outside (0, 1) are not testable nulls."""
     n, level = 25, 0.9
     rows = _every_outcome(n)
@@ -133,13 +133,13 @@ def test_each_p_value_inverts_its_interval(fn):
         for end in (out["ci_low"][x], out["ci_high"][x]):
             if not 0 < end < 1:
                 continue
-            p = fn(rows[x:x + 1], level=level, null=end)["p_value"][0]
+            p = fn(rows[x:x + 1], level=level, null_value=end)["p_value"][0]
             assert p == pytest.approx(1 - level, rel=1e-8)
 
 
 @pytest.mark.parametrize("call, message", [
     (lambda: proportion.wilson(np.array([[0.0, 2.0]])), "`data` must hold only 0 and 1"),
-    (lambda: proportion.wald(np.ones((2, 4)), null=0), "`null` must be strictly between"),
+    (lambda: proportion.wald(np.ones((2, 4)), null_value=0), "`null_value` must be strictly between"),
 ])
 def test_proportion_bad_input_is_named(call, message):
     with pytest.raises(ValueError, match=message):

@@ -39,7 +39,7 @@ def _covers(out, truth):
 def test_mean_agrees_with_scipy_one_sample_t_test():
     """scipy.stats.ttest_1samp: statistic, p-value and confidence interval."""
     x = _rows(1, (6, 15), loc=0.4)
-    out = location.mean(x, level=0.9, null=0.2)
+    out = location.mean(x, level=0.9, null_value=0.2)
     ref = stats.ttest_1samp(x, 0.2, axis=1)
     ci = ref.confidence_interval(0.9)
     np.testing.assert_allclose(out["se"], stats.sem(x, axis=1), rtol=1e-12)
@@ -57,9 +57,9 @@ def test_mean_of_one_observation_is_nan_not_an_error():
 
 # ---------------------------------------------------------------- median
 def test_median_sign_test_agrees_with_scipy_binomtest():
-    """Sign test = scipy.stats.binomtest(#{x > null}, n, 1/2), two-sided."""
+    """Sign test = scipy.stats.binomtest(#{x > null_value}, n, 1/2), two-sided."""
     x = _rows(2, (8, 17), loc=0.3)
-    out = location.median(x, null=0.1)
+    out = location.median(x, null_value=0.1)
     ref = [stats.binomtest(int((row > 0.1).sum()), len(row), 0.5).pvalue for row in x]
     np.testing.assert_allclose(out["p_value"], ref, rtol=1e-12)
     np.testing.assert_array_equal(out["estimate"], np.median(x, axis=1))
@@ -152,9 +152,9 @@ def test_winsorized_mean_agrees_with_scipy_winsorize(proportion, n):
 # ---------------------------------------------------------------- Hodges-Lehmann
 def test_hodges_lehmann_agrees_with_walsh_averages_and_scipy_wilcoxon():
     """Estimate: median of every (x_i + x_j)/2, i <= j, built pair by pair.
-    p-value: scipy.stats.wilcoxon(x - null, method='exact')."""
+    p-value: scipy.stats.wilcoxon(x - null_value, method='exact')."""
     x = _rows(9, (6, 14), loc=0.5)
-    out = location.hodges_lehmann(x, null=0.2)
+    out = location.hodges_lehmann(x, null_value=0.2)
     for i, row in enumerate(x):
         walsh = [(a + b) / 2 for a, b in itertools.combinations_with_replacement(row, 2)]
         assert out["estimate"][i] == pytest.approx(np.median(walsh), rel=1e-12)
@@ -181,8 +181,8 @@ def test_hodges_lehmann_interval_inverts_its_test_and_covers_exactly():
     out = location.hodges_lehmann(x, level=level)
     for i, row in enumerate(x):
         for end, step in [(out["ci_low"][i], 1e-9), (out["ci_high"][i], -1e-9)]:
-            assert location.hodges_lehmann(row[None], level, null=end + step)["p_value"][0] >= 1 - level
-            assert location.hodges_lehmann(row[None], level, null=end - step)["p_value"][0] < 1 - level
+            assert location.hodges_lehmann(row[None], level, null_value=end + step)["p_value"][0] >= 1 - level
+            assert location.hodges_lehmann(row[None], level, null_value=end - step)["p_value"][0] < 1 - level
     cdf = location._signed_rank_cdf(n)
     k = int(np.searchsorted(cdf, (1 - level) / 2, side="right"))
     exact = 1 - 2 * cdf[k - 1]
@@ -263,8 +263,8 @@ def test_variance_chi_square_interval_is_exact_for_normal_data():
         assert abs(coverage - 0.9) < 4 * np.sqrt(0.9 * 0.1 / len(x))
     row = x[:1]
     end = scale.variance(row, level=0.9)["ci_high"][0]
-    assert scale.variance(row, level=0.9, null=end)["p_value"][0] == pytest.approx(0.1, rel=1e-10)
-    assert scale.sd(row, level=0.9, null=np.sqrt(end))["p_value"][0] == pytest.approx(0.1, rel=1e-10)
+    assert scale.variance(row, level=0.9, null_value=end)["p_value"][0] == pytest.approx(0.1, rel=1e-10)
+    assert scale.sd(row, level=0.9, null_value=np.sqrt(end))["p_value"][0] == pytest.approx(0.1, rel=1e-10)
     assert "p_value" not in scale.variance(row)
 
 
@@ -281,7 +281,7 @@ def test_mad_and_iqr_sd_agree_with_scipy():
     (lambda: location.trimmed_mean(np.ones((2, 5)), proportion=0.5), "`proportion` must be in"),
     (lambda: location.median(np.ones((2, 5)), level=95), "`level` must be strictly between"),
     (lambda: location.huber(np.ones((2, 5)), k=0), "`k` must be positive"),
-    (lambda: scale.variance(np.ones((2, 5)), null=0), "`null` must be a positive variance"),
+    (lambda: scale.variance(np.ones((2, 5)), null_value=0), "`null_value` must be a positive variance"),
     (lambda: scale.variance(np.ones((2, 5)), divisor="n-2"), "divisor must be one of"),
 ])
 def test_bad_arguments_are_named(call, message):

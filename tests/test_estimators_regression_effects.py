@@ -95,9 +95,9 @@ def test_constant_x_gives_nan_for_that_replicate_only():
 @pytest.mark.parametrize("fn, equal_var", [(effects.welch, False), (effects.pooled, True)])
 def test_difference_in_means_matches_scipy_ttest_ind(fn, equal_var):
     """scipy.stats.ttest_ind(treated, control, equal_var=...): statistic, p-value and
-    interval; a nonzero null is the test of treated - null against control."""
+    interval; a nonzero null_value is the test of treated - null_value against control."""
     data = _two_arm(5, 4, 30)
-    out, shifted = fn(data, level=0.9), fn(data, level=0.9, null=0.3)
+    out, shifted = fn(data, level=0.9), fn(data, level=0.9, null_value=0.3)
     for i in range(4):
         treated = data["y"][i][data["arm"][i] == 1]
         control = data["y"][i][data["arm"][i] == 0]
@@ -123,7 +123,7 @@ def test_ancova_matches_lstsq_and_matrix_standard_errors():
     """numpy.linalg.lstsq coefficient of arm in y ~ 1 + arm + covariate; SEs by explicit
     matrices; the p-value from the t statistic on n - 3 df via scipy.stats.t."""
     data = _two_arm(7, 4, 24)
-    model, hc3 = effects.ancova(data, null=0.1), effects.ancova(data, se="hc3")
+    model, hc3 = effects.ancova(data, null_value=0.1), effects.ancova(data, se="hc3")
     for i in range(4):
         X = np.column_stack([np.ones(24), data["arm"][i], data["covariate"][i]])
         coef = np.linalg.lstsq(X, data["y"][i], rcond=None)[0]

@@ -127,3 +127,15 @@ def test_shard_file_is_atomic_and_carries_provenance(tmp_path):
     assert table.column_names == ["scenario", "estimator", "block", "rep", "estimate", "se",
                                   "ci_low", "ci_high", "p_value", "status", "message"]
     assert table.column("se").null_count == 0  # location:mean gives an SE
+
+
+def test_code_files_follow_same_folder_helpers(tmp_path):
+    (tmp_path / "_shared_bits.py").write_text("def centre(x):\n    return x.mean(axis=1)\n")
+    (tmp_path / "uses_helper.py").write_text("from _shared_bits import centre\n\n"
+                                            "def est(x):\n    return centre(x)\n")
+    from estbench import plugins
+    files = plugins.code_files("uses_helper:est", [str(tmp_path)])
+    assert [p.name for p in files] == ["uses_helper.py", "_shared_bits.py"]
+    before = plugins.code_hash(files)
+    (tmp_path / "_shared_bits.py").write_text("def centre(x):\n    return x.mean(axis=1) + 0\n")
+    assert plugins.code_hash(files) != before

@@ -115,9 +115,8 @@ def build_parser() -> argparse.ArgumentParser:
     _study_arg(p)
     p.add_argument("--cores", type=int, default=os.cpu_count() or 1,
                    help="cores to use (default: all, here %(default)s)")
-    p.add_argument("snakemake_args", nargs=argparse.REMAINDER,
-                   help="after --, extra arguments passed to Snakemake unchanged")
-    p.set_defaults(func=cmd_run)
+    p.set_defaults(func=cmd_run, snakemake_args=[])
+    p.epilog = "Arguments after a lone -- go to Snakemake unchanged, e.g. estbench run -- --dry-run."
 
     p = sub.add_parser("check", help="validate a study file and say what it would run",
                        description="Validate the study file (schema and meaning) without running anything.")
@@ -145,10 +144,17 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv=None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    if getattr(args, "snakemake_args", None) and args.snakemake_args[0] == "--":
-        args.snakemake_args = args.snakemake_args[1:]
+    argv = list(sys.argv[1:] if argv is None else argv)
+    passthrough = []
+    if "--" in argv:
+        cut = argv.index("--")
+        argv, passthrough = argv[:cut], argv[cut + 1:]
+    args = build_parser().parse_args(argv)
+    if passthrough:
+        if args.command != "run":
+            print("estbench: only `run` passes arguments after -- to Snakemake", file=sys.stderr)
+            return EXIT_USER_ERROR
+        args.snakemake_args = passthrough
     try:
         return args.func(args)
     except StudyError as exc:

@@ -54,10 +54,10 @@ def shard_spec_json(study: Study, scenario: str, estimator: str, first_block: in
 
 
 @lru_cache(maxsize=None)
-def _module_file(function: str, dirs: tuple) -> str:
-    return str(plugins.module_file(function, dirs))
+def _code_files(function: str, dirs: tuple) -> tuple[str, ...]:
+    return tuple(str(p) for p in plugins.code_files(function, dirs))
 
 
-def estimator_source(study: Study, estimator: str) -> str:
-    """Source file of an estimator's module: an input of its shard jobs."""
-    return _module_file(study.estimators[estimator].function, tuple(study.search_dirs))
+def estimator_sources(study: Study, estimator: str) -> list[str]:
+    """Source files of an estimator (its module and same-folder helpers): inputs of its shards."""
+    return list(_code_files(study.estimators[estimator].function, tuple(study.search_dirs)))

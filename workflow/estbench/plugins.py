@@ -12,6 +12,7 @@ import importlib.util
 import inspect
 import sys
 from pathlib import Path
+from types import ModuleType
 from typing import Callable, Iterable
 
 
@@ -54,15 +55,37 @@ def resolve(ref: str, dirs: Iterable[str]) -> Callable:
     return fn
 
 
-def module_file(ref: str, dirs: Iterable[str]) -> Path:
-    """Source file of the module in ``module:callable`` (after importing it)."""
+def code_files(ref: str, dirs: Iterable[str]) -> list[Path]:
+    """Source files whose code decides what ``module:callable`` computes.
+
+    The module's own file first, then the modules it uses from the same folder
+    (e.g. a shared ``_helpers.py``), followed transitively. Editing any of them
+    reruns the estimator's shards and changes its code hash.
+    """
     fn = resolve(ref, dirs)
-    return Path(inspect.getsourcefile(sys.modules[fn.__module__])).resolve()
+    root = sys.modules[fn.__module__]
+    folder = Path(inspect.getsourcefile(root)).resolve().parent
+    found, todo = [], [root]
+    while todo:
+        module = todo.pop(0)
+        path = Path(inspect.getsourcefile(module)).resolve()
+        if path in found:
+            continue
+        found.append(path)
+        for value in vars(module).values():
+            used = value if isinstance(value, ModuleType) else sys.modules.get(getattr(value, "__module__", None) or "")
+            file = getattr(used, "__file__", None)
+            if used is not None and file and Path(file).resolve().parent == folder:
+                todo.append(used)
+    return found
 
 
-def code_hash(path: Path | str) -> str:
-    """Short SHA-256 of a source file's bytes: which code produced a shard."""
-    return hashlib.sha256(Path(path).read_bytes()).hexdigest()[:16]
+def code_hash(paths: Iterable[Path | str]) -> str:
+    """Short SHA-256 over source files' bytes: which code produced a shard."""
+    h = hashlib.sha256()
+    for path in paths:
+        h.update(Path(path).read_bytes())
+    return h.hexdigest()[:16]
 
 
 def accepts(fn: Callable, name: str) -> bool:

@@ -135,13 +135,13 @@ def build_context(con) -> dict:
     dgms = {}
     for s in scenarios:
         d = dgms.setdefault(s["dgm"], {"dgm": s["dgm"], "description": s["dgm_description"],
-                                       "specs": [], "n": [], "keys": 0})
+                                       "specs": [], "n": [], "n_scenarios": 0})
         spec = json.loads(s["spec"])
         if spec not in d["specs"]:
             d["specs"].append(spec)
         if s["n"] not in d["n"]:
             d["n"].append(s["n"])
-        d["keys"] += 1
+        d["n_scenarios"] += 1
     for d in dgms.values():
         d["specs"] = [json.dumps(spec, sort_keys=True) for spec in d["specs"]]
     provenance = _fetch_dicts(con, """

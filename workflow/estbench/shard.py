@@ -96,7 +96,6 @@ def run_shard(spec: Mapping, search_dirs, out: Path) -> dict:
     """Compute one shard and write it atomically; return its provenance."""
     start = time.perf_counter()
     table = compute_shard(spec, search_dirs)
-    fn_file = plugins.module_file(spec["estimator"]["function"], search_dirs)
     scen = spec["scenario"]
     meta = {
         "seed": str(spec["seed"]),
@@ -104,7 +103,7 @@ def run_shard(spec: Mapping, search_dirs, out: Path) -> dict:
         "scenario_spawn_key": str(scen["spawn_key"]),  # block b uses spawn_key=(this, b)
         "estimator": spec["estimator"]["name"],
         "function": spec["estimator"]["function"],
-        "code_hash": plugins.code_hash(fn_file),
+        "code_hash": plugins.code_hash(plugins.code_files(spec["estimator"]["function"], search_dirs)),
         "first_block": spec["first_block"],
         "n_blocks": spec["n_blocks"],
         "block_size": spec["block_size"],

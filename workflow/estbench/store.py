@@ -117,9 +117,9 @@ def _write_study_tables(con, study: Study) -> None:
     con.executemany("INSERT INTO truths VALUES (?,?,?)", truth_rows)
     est_rows = []
     for pos, e in enumerate(study.estimators.values()):
-        source = plugins.module_file(e.function, study.search_dirs)
+        code = plugins.code_hash(plugins.code_files(e.function, study.search_dirs))
         est_rows.append([e.name, e.function, e.target, canonical_json(e.args), e.description,
-                         plugins.code_hash(source), e.name == study.reference, pos])
+                         code, e.name == study.reference, pos])
     con.executemany("INSERT INTO estimators VALUES (?,?,?,?,?,?,?,?)", est_rows)
 
 

@@ -1,7 +1,7 @@
 # One job per scenario x estimator x range of seed blocks; the engine does the work.
 rule shard:
     input:
-        estimator=lambda w: jobs.estimator_source(STUDY, w.estimator),
+        code=lambda w: jobs.estimator_sources(STUDY, w.estimator),
     output:
         f"{RESULTS}/shards/{{scenario}}/{{estimator}}/{{first_block}}.parquet",
     params:
