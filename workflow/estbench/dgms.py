@@ -1,8 +1,15 @@
 """Data-generating mechanisms: draw a whole seed block at once, and know the truth.
 
 A DGM is built from one scenario's resolved spec (no swept lists left). It
-draws ``(reps, n)`` data from a ``numpy.random.Generator`` in one vectorised
-call and returns the true value of each estimand it knows.
+draws a block of data (leading axis = replicates) from a
+``numpy.random.Generator`` in one vectorised call, and answers, for each
+estimand it knows: the true value, the Monte Carlo SE of that value (0 unless
+the truth itself was simulated) and, where known, the Cramér–Rao bound.
+
+Four kinds of spec: ``distribution`` (any scipy.stats distribution),
+``mixture`` (of scipy.stats distributions), ``mechanism`` (two_arm,
+regression, proportion, counts; see ``mechanisms``) and ``generator``
+(a user's ``module:function`` with a ``truth`` companion).
 """
 
 from __future__ import annotations
@@ -10,13 +17,20 @@ from __future__ import annotations
 import difflib
 import math
 from dataclasses import dataclass
+from functools import lru_cache
 from typing import Mapping
 
 import numpy as np
 from scipy import optimize, stats
 
+from . import plugins
+from .mechanisms import MECHANISMS
+from .scenarios import canonical_json
+
 #: Estimands every distribution-based DGM can supply (when finite).
 DISTRIBUTION_ESTIMANDS = ("mean", "median", "sd", "var")
+#: Spawn-key slot of a simulated truth's own stream: never a seed-block index.
+TRUTH_STREAM = 2**64
 
 
 def scipy_distribution(name: str):
@@ -42,9 +56,31 @@ def freeze(name: str, params: Mapping[str, float]):
     except TypeError as exc:
         shapes = dist.shapes or "no shape parameters"
         raise ValueError(f"scipy.stats.{name} takes loc, scale and {shapes}: {exc}") from None
-    if not bool(np.all(frozen.dist._argcheck(*frozen.args))) or frozen.kwds.get("scale", 1) <= 0:
+    if any(np.isnan(bound) for bound in frozen.support()):  # scipy's sign of invalid parameters
         raise ValueError(f"scipy.stats.{name} rejects the parameters {dict(params)}")
     return frozen
+
+
+# Estimands beyond mean/median/sd/var for a few families (rate, p).
+_EXTRA_ESTIMANDS = {
+    "expon": {"rate": lambda f: 1 / f.std() if f.kwds.get("loc", 0) == 0 else math.nan},
+    "poisson": {"rate": lambda f: f.mean()},
+    "bernoulli": {"p": lambda f: f.mean()},
+}
+
+# n x Cramér–Rao bound, i.e. 1 / (Fisher information of one observation), for
+# (distribution, estimand); standard results (e.g. Casella & Berger 2002, ch. 7).
+_CRB = {
+    ("norm", "mean"): lambda f: f.var(),
+    ("norm", "var"): lambda f: 2 * f.var() ** 2,
+    ("norm", "sd"): lambda f: f.var() / 2,
+    ("poisson", "mean"): lambda f: f.var(),
+    ("poisson", "rate"): lambda f: f.var(),
+    ("bernoulli", "mean"): lambda f: f.var(),
+    ("bernoulli", "p"): lambda f: f.var(),
+    ("expon", "mean"): lambda f: f.var(),
+    ("expon", "rate"): lambda f: 1 / f.var(),
+}
 
 
 @dataclass(frozen=True)
@@ -61,11 +97,27 @@ class DistributionDGM:
         """Draw a ``(reps, n)`` array in one call."""
         return np.asarray(self._frozen.rvs(size=(reps, n), random_state=rng), dtype=float)
 
+    def estimands(self) -> tuple:
+        return DISTRIBUTION_ESTIMANDS + tuple(_EXTRA_ESTIMANDS.get(self.distribution, {}))
+
     def truth(self, estimand: str) -> float:
         """True value of *estimand*; NaN when the distribution has none."""
         f = self._frozen
         value = {"mean": f.mean, "median": f.median, "sd": f.std, "var": f.var}.get(estimand)
-        return float(value()) if value is not None else math.nan
+        if value is not None:
+            return float(value())
+        extra = _EXTRA_ESTIMANDS.get(self.distribution, {}).get(estimand)
+        return float(extra(f)) if extra is not None else math.nan
+
+    def truth_mcse(self, estimand: str) -> float:
+        return 0.0
+
+    def crb(self, estimand: str, n: int) -> float:
+        """Cramér–Rao bound 1/(n I) for an unbiased estimator of *estimand*; NaN if unknown."""
+        rule = _CRB.get((self.distribution, estimand))
+        if rule is None or (self.distribution == "expon" and self._frozen.kwds.get("loc", 0) != 0):
+            return math.nan
+        return float(rule(self._frozen)) / n
 
 
 @dataclass(frozen=True)
@@ -109,6 +161,15 @@ class MixtureDGM:
         var = second - mean**2
         return {"var": var, "sd": math.sqrt(var) if var >= 0 else math.nan}.get(estimand, math.nan)
 
+    def estimands(self) -> tuple:
+        return DISTRIBUTION_ESTIMANDS
+
+    def truth_mcse(self, estimand: str) -> float:
+        return 0.0
+
+    def crb(self, estimand: str, n: int) -> float:
+        return math.nan
+
     def _cdf(self, x: float) -> float:
         return float(sum(wk * c.cdf(x) for wk, c in zip(self._weights, self._frozen)))
 
@@ -117,12 +178,81 @@ class MixtureDGM:
         hi = max(float(c.ppf(0.5)) for c in self._frozen)
         if lo == hi:
             return lo
-        return float(optimize.brentq(lambda x: self._cdf(x) - 0.5, lo, hi, xtol=1e-14, rtol=4e-16))
+        return float(optimize.brentq(lambda x: self._cdf(x) - 0.5, lo, hi, xtol=1e-14, rtol=1e-15))
 
 
-def build_dgm(spec: Mapping) -> DistributionDGM | MixtureDGM:
-    """Build the DGM of one scenario from its resolved (sweep-free) spec."""
+@dataclass(frozen=True)
+class CustomDGM:
+    """A user's generator ``module:function`` with its ``truth`` companion.
+
+    ``generator(rng, reps, n, **params)`` returns the block's data: an array
+    with leading axis ``reps``, or a dict of such arrays. ``truth(**params)``
+    returns ``{estimand: value}`` or ``{estimand: (value, mcse)}``; if it
+    declares ``rng`` it gets a stream of its own (seed, spawn_key=(DGM key,
+    2**64)), independent of every seed block, so a simulated truth reproduces.
+    """
+
+    generator: str
+    truth_function: str
+    params: Mapping
+    search_dirs: tuple = ()
+    seed: int = 0
+
+    def draw(self, rng: np.random.Generator, reps: int, n: int):
+        fn = plugins.resolve(self.generator, self.search_dirs)
+        return fn(rng, reps, n, **self.params)
+
+    def _table(self) -> dict:
+        return _custom_truth(self.truth_function, canonical_json(self.params), self.search_dirs, self.seed)
+
+    def estimands(self) -> tuple:
+        return tuple(self._table())
+
+    def truth(self, estimand: str) -> float:
+        return self._table().get(estimand, (math.nan, math.nan))[0]
+
+    def truth_mcse(self, estimand: str) -> float:
+        return self._table().get(estimand, (math.nan, math.nan))[1]
+
+    def crb(self, estimand: str, n: int) -> float:
+        return math.nan
+
+
+@lru_cache(maxsize=256)
+def _custom_truth(ref: str, params_json: str, search_dirs: tuple, seed: int) -> dict:
+    """Call a truth function once per (function, params, seed) in this process."""
+    import hashlib
+    import json
+    params = json.loads(params_json)
+    fn = plugins.resolve(ref, search_dirs)
+    kwargs = dict(params)
+    if plugins.accepts(fn, "rng"):
+        key = int(hashlib.sha256(canonical_json({"truth": ref, "params": params}).encode()).hexdigest()[:16], 16)
+        ss = np.random.SeedSequence(entropy=seed, spawn_key=(key, TRUTH_STREAM))
+        kwargs["rng"] = np.random.Generator(np.random.PCG64DXSM(ss))
+    out = fn(**kwargs)
+    if not isinstance(out, Mapping):
+        raise TypeError(f"{ref} must return a mapping estimand -> value or (value, mcse), "
+                        f"got {type(out).__name__}")
+    table = {}
+    for estimand, value in out.items():
+        v, m = (value if isinstance(value, (tuple, list)) else (value, 0.0))
+        table[str(estimand)] = (float(v), float(m))
+    return table
+
+
+def build_dgm(spec: Mapping, search_dirs=(), seed: int = 0):
+    """Build the DGM of one scenario from its resolved (sweep-free) spec.
+
+    *search_dirs* and *seed* matter only for user generators (module lookup and
+    the stream of a simulated truth).
+    """
+    params = dict(spec.get("params", {}))
     if "mixture" in spec:
         return MixtureDGM(tuple((c["weight"], c["distribution"], dict(c.get("params", {})))
                                 for c in spec["mixture"]))
-    return DistributionDGM(spec["distribution"], dict(spec.get("params", {})))
+    if "mechanism" in spec:
+        return MECHANISMS[spec["mechanism"]](params)
+    if "generator" in spec:
+        return CustomDGM(spec["generator"], spec["truth"], params, tuple(search_dirs), int(seed))
+    return DistributionDGM(spec["distribution"], params)

@@ -51,7 +51,7 @@ def compute_shard(spec: Mapping, search_dirs) -> pa.Table:
     """Draw each seed block of the shard once and apply the estimator to it."""
     scen, est = spec["scenario"], spec["estimator"]
     fn = plugins.resolve(est["function"], search_dirs)
-    dgm = build_dgm(scen["dgm"])
+    dgm = build_dgm(scen["dgm"], tuple(search_dirs), spec["seed"])
     reps, n, seed = spec["block_size"], scen["n"], spec["seed"]
     wants_rng, wants_level = plugins.accepts(fn, "rng"), plugins.accepts(fn, "level")
     parts = []

@@ -19,7 +19,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from . import plugins
-from .dgms import DISTRIBUTION_ESTIMANDS, build_dgm
+from .dgms import build_dgm
 from .errors import UserError
 from .measures import compute_performance
 from .scenarios import canonical_json
@@ -34,7 +34,8 @@ CREATE TABLE IF NOT EXISTS study (
 CREATE TABLE IF NOT EXISTS scenarios (
     scenario VARCHAR PRIMARY KEY, dgm VARCHAR, n BIGINT, spec VARCHAR, swept VARCHAR,
     dgm_description VARCHAR, position BIGINT);
-CREATE TABLE IF NOT EXISTS truths (scenario VARCHAR, estimand VARCHAR, value DOUBLE);
+CREATE TABLE IF NOT EXISTS truths (
+    scenario VARCHAR, estimand VARCHAR, value DOUBLE, mcse DOUBLE, crb DOUBLE);
 CREATE TABLE IF NOT EXISTS estimators (
     estimator VARCHAR PRIMARY KEY, function VARCHAR, target VARCHAR, args VARCHAR,
     description VARCHAR, code_hash VARCHAR, is_reference BOOLEAN, position BIGINT);
@@ -111,10 +112,11 @@ def _write_study_tables(con, study: Study) -> None:
     for pos, s in enumerate(study.scenarios):
         scen_rows.append([s.key, s.dgm, s.n, canonical_json(s.spec), json.dumps(s.swept),
                           study.dgms[s.dgm].get("description", ""), pos])
-        dgm = build_dgm(s.spec)
-        truth_rows += [[s.key, e, dgm.truth(e)] for e in DISTRIBUTION_ESTIMANDS]
+        dgm = build_dgm(s.spec, study.search_dirs, study.seed)
+        truth_rows += [[s.key, e, dgm.truth(e), dgm.truth_mcse(e), dgm.crb(e, s.n)]
+                       for e in dgm.estimands()]
     con.executemany("INSERT INTO scenarios VALUES (?,?,?,?,?,?,?)", scen_rows)
-    con.executemany("INSERT INTO truths VALUES (?,?,?)", truth_rows)
+    con.executemany("INSERT INTO truths VALUES (?,?,?,?,?)", truth_rows)
     est_rows = []
     for pos, e in enumerate(study.estimators.values()):
         code = plugins.code_hash(plugins.code_files(e.function, study.search_dirs))

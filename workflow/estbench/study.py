@@ -13,10 +13,13 @@ from pathlib import Path
 from typing import Any, Mapping
 
 import jsonschema
+import numpy as np
 import yaml
 
 from . import plugins
-from .dgms import DISTRIBUTION_ESTIMANDS, build_dgm, freeze
+from .dgms import build_dgm, freeze, scipy_distribution
+from .estimator import STATUS_ERROR, apply_to_block, short_message
+from .mechanisms import MECHANISMS, check_params
 from .errors import StudyError
 from .paths import SCHEMA_FILE
 from .scenarios import Scenario, expand_study
@@ -177,7 +180,17 @@ class Study:
         return list(range(0, self.n_blocks, self.blocks_per_job))
 
 
-def _dgm_problems(name: str, spec: Mapping) -> list[str]:
+def _variants(params: Mapping):
+    """(key-path suffix, params): every swept value tried once, the others at their first value."""
+    base = {k: (v[0] if isinstance(v, list) else v) for k, v in params.items()}
+    yield "", base
+    for k, values in params.items():
+        if isinstance(values, list):
+            for i, value in enumerate(values[1:], 1):
+                yield f".{k}[{i}]", {**base, k: value}
+
+
+def _dgm_problems(name: str, spec: Mapping, dirs: list[str]) -> list[str]:
     where = f"`dgms.{name}"
     problems = []
     if "mixture" in spec:
@@ -192,55 +205,115 @@ def _dgm_problems(name: str, spec: Mapping) -> list[str]:
             problems.append(f"{where}.mixture`: weights must sum to 1, got {total:g}")
         return problems
     params = spec.get("params", {})
-    lists = {k: v for k, v in params.items() if isinstance(v, list)}
-    # Check each swept value on its own, with the other params at their first value.
-    base = {k: (v[0] if isinstance(v, list) else v) for k, v in params.items()}
-    try:
-        freeze(spec["distribution"], base)
-    except ValueError as exc:
-        return [f"{where}.distribution`: {exc}" if "no distribution" in str(exc)
-                else f"{where}.params`: {exc}"]
-    for k, values in lists.items():
-        for i, value in enumerate(values):
+    if "distribution" in spec:
+        try:
+            scipy_distribution(spec["distribution"])
+        except ValueError as exc:
+            return [f"{where}.distribution`: {exc}"]
+        for label, values in _variants(params):
             try:
-                freeze(spec["distribution"], {**base, k: value})
+                freeze(spec["distribution"], values)
             except ValueError as exc:
-                problems.append(f"{where}.params.{k}[{i}]`: {exc}")
+                problems.append(f"{where}.params{label}`: {exc}")
+    elif "mechanism" in spec:
+        for label, values in _variants(params):
+            problems += [f"{where}.params{label}`: {p}"
+                         for p in check_params(MECHANISMS[spec["mechanism"]], values)]
+    else:
+        for key in ("generator", "truth"):
+            try:
+                plugins.resolve(spec[key], dirs)
+            except (ImportError, AttributeError, TypeError) as exc:
+                problems.append(f"{where}.{key}`: cannot use {spec[key]!r}: {exc}")
     return problems
 
 
-def _estimator_problems(raw: Mapping, scenarios: list[Scenario], dirs: list[str]) -> list[str]:
+def _probe_n(sample_sizes) -> int:
+    """Sample size for check-time trial runs: the largest n <= 100, else the smallest."""
+    small = [n for n in sample_sizes if n <= 100]
+    return max(small) if small else min(sample_sizes)
+
+
+def _probe_block(name: str, spec: Mapping, n: int, dirs, seed) -> tuple[Any, list[str]]:
+    """Draw a 3-replicate block (and check the truth table) or say what went wrong."""
+    where = f"`dgms.{name}"
+    first = next(_variants(spec.get("params", {})))[1]
+    resolved = {**spec, "params": first} if "params" in spec else dict(spec)
+    try:
+        dgm = build_dgm(resolved, dirs, seed)
+        dgm.estimands()  # runs a user's truth function, so its errors surface here
+    except Exception as exc:  # a user's truth function with a bug
+        return None, [f"{where}.truth`: failed: {short_message(exc)}"]
+    try:
+        data = dgm.draw(np.random.default_rng(0), PROBE_REPS, n)
+    except Exception as exc:
+        return None, [f"{where}`: drawing a block failed: {short_message(exc)}"]
+    arrays = data.values() if isinstance(data, Mapping) else [data]
+    for arr in arrays:
+        shape = np.shape(arr)
+        if not shape or shape[0] != PROBE_REPS:
+            return None, [f"{where}.generator`: must return an array (or dict of arrays) with one row "
+                          f"per replicate; asked for {PROBE_REPS} replicates of n = {n}, got shape {shape}"]
+    return data, []
+
+
+PROBE_REPS = 3
+
+
+def _estimator_problems(raw: Mapping, scenarios: list[Scenario], dirs: list[str], seed: int) -> list[str]:
     problems = []
-    truths: dict[str, dict[str, float]] = {}
+    available: dict[str, dict[str, bool]] = {}
     for s in scenarios:
-        dgm = build_dgm(s.spec)
-        truths.setdefault(s.dgm, {})
-        for estimand in DISTRIBUTION_ESTIMANDS:
-            value = dgm.truth(estimand)
-            ok = math.isfinite(value)
-            truths[s.dgm][estimand] = truths[s.dgm].get(estimand, True) and ok
+        dgm = build_dgm(s.spec, dirs, seed)
+        avail = available.setdefault(s.dgm, {})
+        for estimand in dgm.estimands():
+            avail[estimand] = avail.get(estimand, True) and math.isfinite(dgm.truth(estimand))
+    n = _probe_n(raw["sample_sizes"])
+    blocks = {}
+    for dgm_name, spec in raw["dgms"].items():
+        blocks[dgm_name], found = _probe_block(dgm_name, spec, n, dirs, seed)
+        problems += found
+    level = raw.get("level", 0.95)
     for name, spec in raw.get("estimators", {}).items():
+        where = f"`estimators.{name}"
         try:
-            plugins.resolve(spec["function"], dirs)
+            fn = plugins.resolve(spec["function"], dirs)
         except (ImportError, AttributeError, TypeError) as exc:
-            problems.append(f"`estimators.{name}.function`: cannot use {spec['function']!r}: {exc}")
+            problems.append(f"{where}.function`: cannot use {spec['function']!r}: {exc}")
+            fn = None
         target = spec["target"]
-        for dgm, avail in truths.items():
+        for dgm_name, avail in available.items():
             if not avail.get(target, False):
                 have = [e for e, ok in avail.items() if ok]
                 problems.append(
-                    f"`estimators.{name}.target`: DGM {dgm!r} cannot supply the estimand "
+                    f"{where}.target`: DGM {dgm_name!r} cannot supply the estimand "
                     f"{target!r} (it supplies: {', '.join(have) or 'none'})")
+        if fn is None:
+            continue
+        for dgm_name, data in blocks.items():
+            if data is None:
+                continue
+            kwargs = dict(spec.get("args", {}))
+            if plugins.accepts(fn, "level"):
+                kwargs["level"] = level
+            if plugins.accepts(fn, "rng"):
+                kwargs["rng"] = np.random.default_rng(0)
+            result = apply_to_block(fn, data, PROBE_REPS, kwargs)
+            if all(result.status == STATUS_ERROR):
+                problems.append(f"{where}.function`: a trial run on DGM {dgm_name!r} (n = {n}) failed: "
+                                f"{result.message[0]} (check its signature f(data, **args) -> "
+                                f"estimates, and that it suits this DGM's data)")
     return problems
 
 
 def semantic_problems(raw: Mapping, base_dir: Path | None) -> list[str]:
-    """Problems the schema cannot see: scipy names and parameters, imports, targets."""
+    """Problems the schema cannot see: names and parameters, imports, targets, trial runs."""
+    dirs = plugins.search_path(base_dir)
     problems = []
     for name, spec in raw.get("dgms", {}).items():
-        problems += _dgm_problems(name, spec)
+        problems += _dgm_problems(name, spec, dirs)
     if problems:
-        return problems
+        return sorted(set(problems))
     scenarios = expand_study(raw["dgms"], raw["sample_sizes"])
     seen: dict[str, Scenario] = {}
     for s in scenarios:
@@ -248,7 +321,10 @@ def semantic_problems(raw: Mapping, base_dir: Path | None) -> list[str]:
             problems.append(f"`dgms.{s.dgm}`: draws the same data as `dgms.{seen[s.key].dgm}` "
                             f"(identical spec); remove one of them")
         seen.setdefault(s.key, s)
-    problems += _estimator_problems(raw, scenarios, plugins.search_path(base_dir))
+    try:
+        problems += _estimator_problems(raw, scenarios, dirs, int(raw["seed"]))
+    except Exception as exc:  # a user's truth function failing on some swept value
+        problems.append(f"`dgms`: computing the true values failed: {short_message(exc)}")
     ref = raw.get("reference")
     if ref is not None and ref not in raw["estimators"]:
         problems.append(f"`reference`: {ref!r} is not one of the estimators "
