@@ -21,7 +21,7 @@ def test_run_produces_store_csv_and_report(tmp_path):
     # An estimator module beside the study file, found without touching estbench.
     (tmp_path / "yard_rules.py").write_text(
         "def midrange(x):\n    return (x.min(axis=1) + x.max(axis=1)) / 2\n")
-    study = tiny_study(description="Plot yields <b>bold</b> & co")
+    study = tiny_study(description="Plot yields <b>bold</b> & co", targets={"bias": 0.5, "coverage": 0.05})
     study["estimators"]["midrange"] = study["estimators"].pop("median")
     study["estimators"]["midrange"]["function"] = "yard_rules:midrange"
     path = write_study(tmp_path, study)
@@ -35,9 +35,16 @@ def test_run_produces_store_csv_and_report(tmp_path):
     measures = {(r["estimator"], r["measure"]) for r in rows}
     assert ("mean", "coverage") in measures and ("midrange", "coverage") not in measures
     assert ("midrange", "rmse") in measures
+    assert ("midrange", "relative_efficiency") in measures and ("mean", "relative_efficiency") not in measures
+    checks = list(csv.DictReader(open(out / "checks.csv")))
+    assert {c["check"] for c in checks} == {"mcse_target", "block_heterogeneity"}
+    assert {c["df"] for c in checks if c["check"] == "block_heterogeneity"} == {"5"}  # 6 blocks
+    plan = run_cli("plan", path, cwd=tmp_path, check=True).stdout
+    assert "normal n=20" in plan and "coverage" in plan
     assert {r["n_ok"] for r in rows} == {"60"}
     html = (out / "report.html").read_text()
     assert "<svg" in html and "Plot yields &lt;b&gt;bold&lt;/b&gt; &amp; co" in html
+    assert 'id="precision"' in html and "Between-block heterogeneity" in html
     assert "http://" not in html and "https://" not in html
     status = run_cli("status", path, cwd=tmp_path, check=True).stdout
     assert "8 of 8 shards done" in status and "mean: 120 replicates in 2 scenario(s), 0 failed" in status

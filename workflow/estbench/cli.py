@@ -1,4 +1,4 @@
-"""The ``estbench`` command: run, check, status, report, query.
+"""The ``estbench`` command: run, check, status, plan, report, query.
 
 User errors print one clear line per problem and exit with status 2; bugs
 keep their traceback.
@@ -102,6 +102,61 @@ def cmd_query(args) -> int:
     return 0
 
 
+def print_table(header: list[str], rows: list[list]) -> None:
+    """Plain aligned text columns on stdout."""
+    cells = [header] + [["—" if v is None else str(v) for v in r] for r in rows]
+    widths = [max(len(r[i]) for r in cells) for i in range(len(header))]
+    for r in cells:
+        print("  ".join(v.rjust(w) if i else v.ljust(w) for i, (v, w) in enumerate(zip(r, widths))).rstrip())
+
+
+def cmd_plan(args) -> int:
+    from .mcse import SHARE_MEASURES, replicates_needed
+    study = _load(args.study)
+    if not study.targets:
+        print(f"study {study.name!r} sets no MCSE targets: add `targets:` (measure -> largest acceptable MCSE)")
+        return 0
+    store = store_path(study.name)
+    if store.exists():
+        from .measures import plan_replicates
+        from .store import measure_options, open_read_only
+        con = open_read_only(store)
+        try:
+            table = plan_replicates(con, "estimates", "truth", study.targets, **measure_options(study))
+            names = {k: (pos, label) for k, pos, label in con.execute(
+                "SELECT scenario, position, dgm || ' n=' || n FROM scenarios").fetchall()}
+        finally:
+            con.close()
+        rows = []
+        for r in sorted(table.to_pylist(), key=lambda r: names.get(r["scenario"], (0, ""))[0]):
+            met = r["mcse"] is not None and r["mcse"] <= r["target"]
+            rows.append([names.get(r["scenario"], (0, r["scenario"]))[1], r["estimator"], r["measure"],
+                         None if r["mcse"] is None else f"{r['mcse']:.3g}", f"{r['target']:g}",
+                         r["n_ok"], r["n_needed"], r["n_to_run"], "met" if met else "NOT met"])
+        print(f"Replicates needed for each target, from the {store} store "
+              f"(n_sim = n_ok·(MCSE/target)²; 'to run' allows for failed replicates):")
+        print_table(["scenario", "estimator", "measure", "MCSE now", "target", "replicates",
+                     "needed", "to run", "status"], rows)
+        return 0
+    print(f"No results yet for {study.name!r}: worst-case plan before any run "
+          f"(shares at P = 0.5{'; SD guess ' + str(args.sd) if args.sd else ''}).")
+    rows = []
+    for measure, target in study.targets.items():
+        if measure in SHARE_MEASURES:
+            rows.append([measure, target, replicates_needed(measure, target), "worst case P(1−P) = 1/4"])
+            if measure == "coverage":
+                rows.append([measure, target, replicates_needed(measure, target, proportion=study.level),
+                             f"if coverage = the nominal {study.level:g}"])
+        elif args.sd is not None and measure in ("bias", "empse", "mse", "rmse"):
+            rows.append([measure, target, replicates_needed(measure, target, sd=args.sd),
+                         f"SD of estimates = {args.sd}"])
+        else:
+            rows.append([measure, target, None, "needs a pilot run" +
+                         (" or --sd GUESS" if measure in ("bias", "empse", "mse", "rmse") else "")])
+    print_table(["measure", "target", "replicates", "basis"], rows)
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="estbench",
@@ -127,6 +182,15 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Count finished shards and the replicates already in the store.")
     _study_arg(p)
     p.set_defaults(func=cmd_status)
+
+    p = sub.add_parser("plan", help="replicates needed to meet the MCSE targets",
+                       description="For every scenario x estimator x targeted measure: the MCSE so far, "
+                                   "the target and the replicates needed (n_sim = Var/MCSE^2; for a "
+                                   "share such as coverage C(1-C)/MCSE^2). Before any run, the worst case.")
+    _study_arg(p)
+    p.add_argument("--sd", type=float, default=None,
+                   help="before any run: a guess of the SD of the estimates, for bias/empse/mse/rmse targets")
+    p.set_defaults(func=cmd_plan)
 
     p = sub.add_parser("report", help="re-render report.html and performance.csv from the store",
                        description="Render the report and CSV from the store alone; simulates nothing.")
@@ -168,6 +232,9 @@ def main(argv=None) -> int:
         for line in exc.problems:
             print(f"estbench: {line}", file=sys.stderr)
         return EXIT_USER_ERROR
+    except BrokenPipeError:  # output piped into e.g. `head`, which stopped reading
+        sys.stderr.close()
+        return 0
     except KeyboardInterrupt:
         print("estbench: interrupted; run the same command again to resume", file=sys.stderr)
         return 130

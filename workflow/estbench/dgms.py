@@ -21,7 +21,7 @@ from functools import lru_cache
 from typing import Mapping
 
 import numpy as np
-from scipy import optimize, stats
+from scipy import stats
 
 from . import plugins
 from .mechanisms import MECHANISMS
@@ -178,6 +178,7 @@ class MixtureDGM:
         hi = max(float(c.ppf(0.5)) for c in self._frozen)
         if lo == hi:
             return lo
+        from scipy import optimize  # only mixtures need it; keeps shard start-up lean
         return float(optimize.brentq(lambda x: self._cdf(x) - 0.5, lo, hi, xtol=1e-14, rtol=1e-15))
 
 

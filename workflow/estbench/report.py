@@ -16,6 +16,10 @@ from .measures import MEASURES
 from .paths import REPORT_TEMPLATES
 from .store import open_read_only
 
+#: Measures shown in the report's tables (every measure is in performance.csv).
+TABLE_MEASURES = ("bias", "empse", "modse", "rmse", "coverage", "ci_width", "rejection_rate",
+                  "relative_efficiency", "crb_efficiency")
+
 #: Fixed leading and trailing columns of performance.csv; swept parameters go between.
 CSV_HEAD = ("scenario", "dgm", "n")
 CSV_TAIL = ("estimator", "target", "measure", "value", "mcse", "n_ok", "n_failed")
@@ -78,6 +82,26 @@ def write_performance_csv(rows, out: Path) -> None:
     os.replace(tmp, out)
 
 
+def write_checks_csv(con, out: Path) -> None:
+    """The Monte Carlo error checks, one row per scenario x estimator x check."""
+    rows = _fetch_dicts(con, """
+        SELECT c.scenario, s.dgm, s.n, c.estimator, c.check, c.measure, c.statistic, c.limit,
+               c.passed, c.p_value, c.df, c.n_ok, c.n_needed
+        FROM checks c JOIN scenarios s USING (scenario)
+        ORDER BY s.position, c.estimator, c.check, c.measure""")
+    header = ["scenario", "dgm", "n", "estimator", "check", "measure", "statistic", "limit",
+              "passed", "p_value", "df", "n_ok", "n_needed"]
+    tmp = out.with_name(out.name + f".tmp-{os.getpid()}")
+    with open(tmp, "w", newline="") as fh:
+        writer = csv.writer(fh, lineterminator="\n")
+        writer.writerow(header)
+        for r in rows:
+            writer.writerow([fmt_number(r[h]) if isinstance(r[h], float) else
+                             ("" if r[h] is None else str(r[h]).lower() if isinstance(r[h], bool) else r[h])
+                             for h in header])
+    os.replace(tmp, out)
+
+
 def _fetch_dicts(con, sql):
     cur = con.execute(sql)
     names = [d[0] for d in cur.description]
@@ -104,7 +128,8 @@ def build_context(con) -> dict:
     estimators = _fetch_dicts(con, "SELECT * FROM estimators ORDER BY position")
     rows = _performance_rows(con)
     colour = colours([e["estimator"] for e in estimators])
-    measures = [m for m in MEASURES if any(r["measure"] == m.name for r in rows)]
+    present = {r["measure"] for r in rows}
+    measures = [m for m in MEASURES if m.name in TABLE_MEASURES and m.name in present]
 
     tables, figures = [], []
     for (dgm, swept_json), fam_rows in _families(rows).items():
@@ -114,8 +139,9 @@ def build_context(con) -> dict:
         for r in fam_rows:
             key = (r["epos"], r["n"])
             cells[key][r["measure"]] = r
-            meta[key] = {"estimator": r["estimator"], "n": r["n"], "n_ok": r["n_ok"],
-                         "n_failed": r["n_failed"], "target": r["target"]}
+            if r["measure"] == "bias" or key not in meta:  # bias counts every ok replicate
+                meta[key] = {"estimator": r["estimator"], "n": r["n"], "n_ok": r["n_ok"],
+                             "n_failed": r["n_failed"], "target": r["target"]}
         table_rows = [{**meta[k], "cells": cells[k]} for k in sorted(cells)]
         tables.append({"title": title, "rows": table_rows})
         series = defaultdict(lambda: defaultdict(lambda: {"n": [], "value": [], "mcse": []}))
@@ -153,7 +179,20 @@ def build_context(con) -> dict:
     counts = _fetch_dicts(con, """
         SELECT count(*) AS rows, count(*) FILTER (WHERE status <> 'ok') AS failed
         FROM estimates""")[0]
+    checks = _fetch_dicts(con, """
+        SELECT c.*, s.dgm, s.n, s.swept FROM checks c JOIN scenarios s USING (scenario)
+        ORDER BY s.position, c.estimator, c.check, c.measure""")
+    failures = _fetch_dicts(con, """
+        WITH f AS (SELECT scenario, estimator, status, message, count(*) AS k FROM estimates
+                   WHERE status <> 'ok' GROUP BY ALL)
+        SELECT f.estimator, s.dgm, s.n, s.swept, sum(k) AS failed,
+               arg_max(message, k) AS top_message, max(k) AS top_count
+        FROM f JOIN scenarios s USING (scenario)
+        GROUP BY f.estimator, s.dgm, s.n, s.swept, s.position ORDER BY s.position, f.estimator""")
     return {
+        "checks_target": [c for c in checks if c["check"] == "mcse_target"],
+        "checks_blocks": [c for c in checks if c["check"] == "block_heterogeneity"],
+        "failures": failures,
         "study": study, "scenarios": scenarios, "dgms": list(dgms.values()), "estimators": estimators, "colour": colour,
         "measures": measures, "tables": tables, "figures": figures, "provenance": provenance,
         "counts": counts, "targets": json.loads(study["targets"] or "{}"),
@@ -172,12 +211,13 @@ def render_html(context: dict) -> str:
 
 
 def render(store: Path | str, html_out: Path | str, csv_out: Path | str) -> None:
-    """Write ``performance.csv`` and ``report.html`` from the store (read-only)."""
+    """Write ``performance.csv``, ``checks.csv`` beside it and ``report.html`` from the store."""
     html_out, csv_out = Path(html_out), Path(csv_out)
     con = open_read_only(store)
     try:
         context = build_context(con)
         rows = _performance_rows(con)
+        write_checks_csv(con, csv_out.with_name("checks.csv"))
     finally:
         con.close()
     write_performance_csv(rows, csv_out)

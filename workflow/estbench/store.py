@@ -21,7 +21,7 @@ import pyarrow.parquet as pq
 from . import plugins
 from .dgms import build_dgm
 from .errors import UserError
-from .measures import compute_performance
+from .measures import compute_checks, compute_performance
 from .scenarios import canonical_json
 from .shard import SHARD_SCHEMA, read_metadata
 from .study import Study
@@ -49,13 +49,15 @@ CREATE TABLE IF NOT EXISTS provenance (
 CREATE TABLE IF NOT EXISTS estimates (
     scenario VARCHAR, estimator VARCHAR, block BIGINT, rep BIGINT, estimate DOUBLE,
     se DOUBLE, ci_low DOUBLE, ci_high DOUBLE, p_value DOUBLE, status VARCHAR, message VARCHAR);
-CREATE TABLE IF NOT EXISTS performance (
-    scenario VARCHAR, estimator VARCHAR, measure VARCHAR, value DOUBLE, mcse DOUBLE,
-    n_ok BIGINT, n_failed BIGINT);
 CREATE OR REPLACE VIEW truth AS
     SELECT t.scenario, e.estimator, t.value AS truth
     FROM truths t JOIN estimators e ON t.estimand = e.target;
+CREATE OR REPLACE VIEW crb AS
+    SELECT t.scenario, e.estimator, t.crb
+    FROM truths t JOIN estimators e ON t.estimand = e.target WHERE isfinite(t.crb);
 """
+#: Derived tables, rebuilt from the estimates by every ingest.
+DERIVED = ("performance", "checks")
 
 
 def sha256_file(path: Path) -> str:
@@ -125,6 +127,22 @@ def _write_study_tables(con, study: Study) -> None:
     con.executemany("INSERT INTO estimators VALUES (?,?,?,?,?,?,?,?)", est_rows)
 
 
+def measure_options(study: Study) -> dict:
+    """Keyword arguments of the measure functions for this study's store."""
+    return {"reference": study.reference, "level": study.level, "crb": "crb"}
+
+
+def _write_derived(con, study: Study) -> None:
+    """Recompute the performance and checks tables from the estimates."""
+    options = measure_options(study)
+    tables = {"performance": compute_performance(con, "estimates", "truth", **options),
+              "checks": compute_checks(con, "estimates", "truth", study.targets, **options)}
+    for name, table in tables.items():
+        con.register("derived_in", table)
+        con.execute(f"CREATE OR REPLACE TABLE {name} AS SELECT * FROM derived_in")
+        con.unregister("derived_in")
+
+
 def ingest(store: Path | str, study: Study, shards: Iterable[Path | str]) -> dict:
     """Bring the store up to date with *shards* and recompute the measures.
 
@@ -167,11 +185,7 @@ def ingest(store: Path | str, study: Study, shards: Iterable[Path | str]) -> dic
                 v["estbench"], v["numpy"], v["scipy"], v["pyarrow"], v["python"], meta["seconds"],
                 meta["created"]])
         _write_study_tables(con, study)
-        con.execute("DELETE FROM performance")
-        perf = compute_performance(con, "estimates", "truth")
-        con.register("perf_in", perf)
-        con.execute("INSERT INTO performance SELECT * FROM perf_in")
-        con.unregister("perf_in")
+        _write_derived(con, study)
         rows = con.execute("SELECT count(*) FROM estimates").fetchone()[0]
         con.execute("COMMIT")
     except BaseException:
