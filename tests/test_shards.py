@@ -142,3 +142,23 @@ def test_code_files_follow_same_folder_helpers(tmp_path):
     before = plugins.code_hash(files)
     (tmp_path / "_shared_bits.py").write_text("def centre(x):\n    return x.mean(axis=1) + 0\n")
     assert plugins.code_hash(files) != before
+
+
+def test_per_replicate_time_limit_and_structured_data():
+    import time
+
+    from estbench.estimator import apply_to_block
+
+    @per_replicate(time_limit=0.2)
+    def slow_when_negative(row):
+        if row["y"][0] < 0:
+            time.sleep(5)
+        return float(row["y"].mean() - row["x"].mean())
+
+    data = {"x": np.zeros((4, 3)), "y": np.array([[1.0, 2, 3], [-1, 0, 0], [2, 2, 2], [-5, 1, 1]])}
+    start = time.perf_counter()
+    result = apply_to_block(slow_when_negative, data, 4, {})
+    assert time.perf_counter() - start < 2  # two limits of 0.2 s, not two sleeps of 5 s
+    assert result.status.tolist() == ["ok", "error", "ok", "error"]
+    assert result.message[1] == "TimeLimitExceeded: replicate took longer than 0.2 s"
+    np.testing.assert_array_equal(result.columns["estimate"][[0, 2]], [2.0, 2.0])

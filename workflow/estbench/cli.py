@@ -1,4 +1,4 @@
-"""The ``estbench`` command: run, check, status, plan, report, query.
+"""The ``estbench`` command: run, check, status, plan, report, query, new.
 
 User errors print one clear line per problem and exit with status 2; bugs
 keep their traceback.
@@ -157,6 +157,17 @@ def cmd_plan(args) -> int:
     return 0
 
 
+def cmd_new(args) -> int:
+    from .scaffold import new_estimator
+    written = new_estimator(args.name, args.dir)
+    for path in written:
+        print(f"wrote {path}")
+    print(f"Next: edit {written[0].name}, run `python -m pytest {written[1]}`, then add to your study\n"
+          f"  estimators:\n    {args.name}: {{function: \"{args.name}:{args.name}\", target: mean}}\n"
+          f"and `estbench run`: only the new estimator's shards are computed.")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="estbench",
@@ -196,6 +207,15 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Render the report and CSV from the store alone; simulates nothing.")
     _study_arg(p)
     p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser("new", help="scaffold a new estimator module and its test",
+                       description="Write NAME.py (a commented estimator to fill in) and test_NAME.py "
+                                   "in --dir (default: the current folder, where a study file beside "
+                                   "them finds the module).")
+    p.add_argument("kind", choices=["estimator"], help="what to create")
+    p.add_argument("name", help="the estimator's module and function name")
+    p.add_argument("--dir", type=Path, default=Path("."), help="folder to write into (default: .)")
+    p.set_defaults(func=cmd_new)
 
     p = sub.add_parser("query", help="read-only SQL against the store, CSV to stdout",
                        description="Run one read-only SQL query against the study's store. Tables: study, "

@@ -10,8 +10,11 @@ estimator that records failures replicate by replicate.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import math
+import signal
+import threading
 from dataclasses import dataclass, fields
 from typing import Callable, Mapping
 
@@ -120,24 +123,55 @@ class _PerReplicateEstimates(dict):
     errors: dict
 
 
-def per_replicate(fn: Callable) -> Callable:
+class TimeLimitExceeded(Exception):
+    """A replicate ran longer than the estimator's per-replicate time limit."""
+
+
+@contextlib.contextmanager
+def _time_limit(seconds: float | None):
+    """Raise ``TimeLimitExceeded`` in the block after *seconds* (main thread, Unix only)."""
+    usable = (seconds and hasattr(signal, "setitimer")
+              and threading.current_thread() is threading.main_thread())
+    if not usable:
+        yield
+        return
+
+    def expire(signum, frame):
+        raise TimeLimitExceeded(f"replicate took longer than {seconds:g} s")
+
+    previous = signal.signal(signal.SIGALRM, expire)
+    signal.setitimer(signal.ITIMER_REAL, seconds)
+    try:
+        yield
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        signal.signal(signal.SIGALRM, previous)
+
+
+def per_replicate(fn: Callable | None = None, *, time_limit: float | None = None):
     """Wrap a function of one dataset into a batch estimator.
 
-    The wrapped function is called once per replicate with that replicate's
-    data (``data[i]``) and the same keyword arguments. It returns a number or a
-    mapping with the contract's fields. An exception in replicate *i* is
-    recorded as status 'error' for *i* alone, with its message.
+    Use as ``@per_replicate`` or ``@per_replicate(time_limit=2.0)``. The wrapped
+    function is called once per replicate with that replicate's data
+    (``data[i]``, or a dict of each array's row i) and the same keyword
+    arguments. It returns a number or a mapping with the contract's fields.
+    An exception in replicate *i*, or a run longer than ``time_limit``
+    seconds, is recorded as status 'error' for *i* alone, with its message.
     """
+    if fn is None:
+        return functools.partial(per_replicate, time_limit=time_limit)
 
     @functools.wraps(fn)
     def batch(data, **kwargs):
-        reps = len(data)
+        reps = len(next(iter(data.values()))) if isinstance(data, Mapping) else len(data)
         cols = {name: np.full(reps, np.nan) for name in FIELDS}
         present = {"estimate"}
         errors = {}
         for i in range(reps):
+            row = {k: v[i] for k, v in data.items()} if isinstance(data, Mapping) else data[i]
             try:
-                out = fn(data[i], **kwargs)
+                with _time_limit(time_limit):
+                    out = fn(row, **kwargs)
             except Exception as exc:
                 errors[i] = short_message(exc)
                 continue
