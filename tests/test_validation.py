@@ -102,3 +102,17 @@ def test_check_summarises_a_valid_study(tmp_path):
     proc = run_cli("check", write_study(tmp_path, tiny_study()), cwd=tmp_path, check=True)
     assert "2 scenario(s), 2 estimator(s), 60 replicates per scenario (6 seed block(s) of 10), " \
            "8 shard job(s)" in proc.stdout
+
+
+def test_report_options_must_name_what_the_study_has(tmp_path):
+    study = tiny_study(report={"tolerance": {"mean": 0.1}, "zip": {"dgm": "nope", "n": 7},
+                               "asymptotic_efficiency": {"median": {"normal": 0.6366}, "mode": {}}})
+    proc = run_cli("check", write_study(tmp_path, study), cwd=tmp_path)
+    assert proc.returncode == 2
+    for line in ("`report.zip.dgm`: 'nope' is not one of the DGMs (normal)",
+                 "`report.zip.n`: 7 is not one of the sample sizes",
+                 "`report.asymptotic_efficiency.mode`: not one of the estimators"):
+        assert line in proc.stderr
+    ok = tiny_study(report={"tolerance": 0.25, "zip": {"dgm": "normal", "n": 20},
+                            "asymptotic_efficiency": {"median": {"normal": 0.6366}}})
+    assert run_cli("check", write_study(tmp_path, ok), cwd=tmp_path).returncode == 0

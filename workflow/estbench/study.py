@@ -153,6 +153,7 @@ class Study:
     estimators: Mapping[str, EstimatorSpec]
     reference: str | None
     targets: Mapping[str, float]
+    report: Mapping              #: report-only options (tolerance, zip, asymptotic_efficiency)
     source: Path | None          #: the study file, when loaded from one
     raw: Mapping                 #: the mapping as written, for the report appendix
 
@@ -306,6 +307,25 @@ def _estimator_problems(raw: Mapping, scenarios: list[Scenario], dirs: list[str]
     return problems
 
 
+def _report_problems(raw: Mapping) -> list[str]:
+    """Report options must name DGMs, sample sizes and estimators the study has."""
+    report, problems = raw.get("report", {}), []
+    zip_spec = report.get("zip")
+    if zip_spec:
+        if zip_spec["dgm"] not in raw["dgms"]:
+            problems.append(f"`report.zip.dgm`: {zip_spec['dgm']!r} is not one of the DGMs "
+                            f"({', '.join(raw['dgms'])})")
+        if zip_spec["n"] not in raw["sample_sizes"]:
+            problems.append(f"`report.zip.n`: {zip_spec['n']} is not one of the sample sizes")
+    for est, per_dgm in report.get("asymptotic_efficiency", {}).items():
+        if est not in raw["estimators"]:
+            problems.append(f"`report.asymptotic_efficiency.{est}`: not one of the estimators")
+        for dgm in per_dgm:
+            if dgm not in raw["dgms"]:
+                problems.append(f"`report.asymptotic_efficiency.{est}.{dgm}`: not one of the DGMs")
+    return problems
+
+
 def semantic_problems(raw: Mapping, base_dir: Path | None) -> list[str]:
     """Problems the schema cannot see: names and parameters, imports, targets, trial runs."""
     dirs = plugins.search_path(base_dir)
@@ -325,6 +345,7 @@ def semantic_problems(raw: Mapping, base_dir: Path | None) -> list[str]:
         problems += _estimator_problems(raw, scenarios, dirs, int(raw["seed"]))
     except Exception as exc:  # a user's truth function failing on some swept value
         problems.append(f"`dgms`: computing the true values failed: {short_message(exc)}")
+    problems += _report_problems(raw)
     ref = raw.get("reference")
     if ref is not None and ref not in raw["estimators"]:
         problems.append(f"`reference`: {ref!r} is not one of the estimators "
@@ -355,7 +376,8 @@ def study_from_mapping(raw: Any, source: Path | None = None) -> Study:
         blocks_per_job=int(raw.get("blocks_per_job", 10)), level=float(raw.get("level", 0.95)),
         sample_sizes=tuple(int(n) for n in raw["sample_sizes"]), dgms=dict(raw["dgms"]),
         estimators=estimators, reference=raw.get("reference"),
-        targets=dict(raw.get("targets", {})), source=source, raw=raw)
+        targets=dict(raw.get("targets", {})), report=dict(raw.get("report", {})),
+        source=source, raw=raw)
 
 
 def load_study(path: Path | str) -> Study:
