@@ -49,20 +49,27 @@ CASES = {
         _bad(estimators={"mean": {"function": "location:mean", "target": "mean", "args": {None: 1}}}),
         "`estimators.mean.args`: key None must be a Python identifier"),
     "unknown target measure": (_bad(targets={"bias": 0.1, "speed": 1}),
-                               "`targets`: key 'speed' must be one of"),
+                               "`targets`: key 'speed' must be a measure name: bias, relative_bias"),
 }
 
 
 @pytest.mark.parametrize("case", sorted(CASES))
 def test_bad_study_is_refused_with_a_clear_line(tmp_path, case):
     study, expected = CASES[case]
-    path = write_study(tmp_path, study)
-    for verb in ("check", "run"):
-        proc = run_cli(verb, path, cwd=tmp_path)
-        assert proc.returncode == 2, proc.stderr
-        assert expected in proc.stderr, proc.stderr
-        assert "Traceback" not in proc.stderr
+    proc = run_cli("check", write_study(tmp_path, study), cwd=tmp_path)
+    assert proc.returncode == 2, proc.stderr
+    assert expected in proc.stderr, proc.stderr
+    assert "Traceback" not in proc.stderr
     assert sorted(p.name for p in tmp_path.iterdir()) == ["study.yaml"]  # nothing written
+
+
+@pytest.mark.parametrize("case", ["unknown key", "estimand the DGM cannot supply", "study name with dots"])
+def test_run_refuses_before_snakemake_starts(tmp_path, case):
+    # `run` validates with the same code as `check`, before Snakemake writes anything.
+    study, expected = CASES[case]
+    proc = run_cli("run", write_study(tmp_path, study), cwd=tmp_path)
+    assert proc.returncode == 2 and expected in proc.stderr and "Traceback" not in proc.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["study.yaml"]  # no results/, no .snakemake/
 
 
 def test_malformed_yaml_names_the_line(tmp_path):
