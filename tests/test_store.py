@@ -78,10 +78,22 @@ def test_failed_ingest_leaves_the_previous_store(tmp_path):
     store = tmp_path / "store.duckdb"
     ingest(store, study, paths[:4])
     paths[5].write_bytes(paths[5].read_bytes()[:100])  # truncated shard
-    with pytest.raises(UserError, match=r"shard .*5?\.parquet is unreadable"):
+    with pytest.raises(UserError, match=r"shard .*\.parquet unreadable .* will be recomputed"):
         ingest(store, study, paths)
     assert _count(store) == 4 * 30
     assert _count(store, "SELECT count(*) FROM shards") == 4
+    assert not paths[5].exists()  # removed, so the next run recomputes it
+    assert str(paths[5]) in (tmp_path / "results/tiny/shards-to-recompute.txt").read_text()
+
+
+def test_bit_flip_inside_a_shard_is_caught_by_page_checksums(tmp_path):
+    study, paths = _setup(tmp_path)
+    data = bytearray(paths[2].read_bytes())
+    data[len(data) // 3] ^= 0x40  # one flipped bit in a data page; the footer stays readable
+    paths[2].write_bytes(bytes(data))
+    with pytest.raises(UserError, match="will be recomputed"):
+        ingest(tmp_path / "store.duckdb", study, paths)
+    assert not paths[2].exists()
 
 
 def test_performance_rows_match_the_estimates(tmp_path):

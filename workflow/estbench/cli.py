@@ -8,13 +8,12 @@ from __future__ import annotations
 
 import argparse
 import os
-import subprocess
 import sys
 from pathlib import Path
 
 from . import __version__
 from .errors import StudyError, UserError
-from .paths import DEFAULT_STUDY, SNAKEFILE, results_dir, store_path
+from .paths import DEFAULT_STUDY, results_dir, store_path
 
 EXIT_USER_ERROR = 2
 
@@ -38,17 +37,10 @@ def cmd_check(args) -> int:
     return 0
 
 
-def snakemake_command(study_file: Path, cores: int, extra: list[str]) -> list[str]:
-    """The Snakemake call behind ``estbench run``."""
-    return [sys.executable, "-m", "snakemake", "--snakefile", str(SNAKEFILE),
-            "--directory", os.getcwd(), "--configfile", str(study_file.resolve()),
-            "--cores", str(cores), "--scheduler", "greedy", "--rerun-incomplete", *extra]
-
-
 def cmd_run(args) -> int:
+    from .runner import run_study
     study = _load(args.study)
-    cmd = snakemake_command(args.study, args.cores, args.snakemake_args)
-    code = subprocess.call(cmd)
+    code = run_study(study, args.study, Path.cwd(), args.cores, args.snakemake_args, args.verbose)
     if code == 0:
         out = results_dir(study.name)
         print(f"estbench: done. Report: {out / 'report.html'}  Measures: {out / 'performance.csv'}")
@@ -181,6 +173,8 @@ def build_parser() -> argparse.ArgumentParser:
     _study_arg(p)
     p.add_argument("--cores", type=int, default=os.cpu_count() or 1,
                    help="cores to use (default: all, here %(default)s)")
+    p.add_argument("--verbose", action="store_true",
+                   help="show Snakemake's own output instead of the progress line")
     p.set_defaults(func=cmd_run, snakemake_args=[])
     p.epilog = "Arguments after a lone -- go to Snakemake unchanged, e.g. estbench run -- --dry-run."
 

@@ -20,8 +20,15 @@ from .study import Study
 
 def shard_paths(study: Study, workdir: Path | str = ".") -> list[Path]:
     """Every shard the study needs, scenario by scenario."""
-    return [shard_path(study.name, s.key, e, b, workdir)
-            for s in study.scenarios for e in study.estimators for b in study.job_first_blocks()]
+    return [path for path, _ in shard_rows(study, workdir)]
+
+
+def shard_rows(study: Study, workdir: Path | str = ".") -> list[tuple[Path, int]]:
+    """Every shard with the number of replicates it holds."""
+    first_blocks = study.job_first_blocks()
+    rows = {b: min(study.blocks_per_job, study.n_blocks - b) * study.block_size for b in first_blocks}
+    return [(shard_path(study.name, s.key, e, b, workdir), rows[b])
+            for s in study.scenarios for e in study.estimators for b in first_blocks]
 
 
 def scenario_by_key(study: Study, key: str):

@@ -10,6 +10,7 @@ shard under the final name.
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import os
 import platform
@@ -20,12 +21,14 @@ from typing import Mapping
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import scipy
 
 from . import __version__, plugins
 from .dgms import build_dgm
 from .estimator import FIELDS, apply_to_block
+from .scenarios import canonical_json
 from .seeding import block_generator, estimator_generator
 
 #: Arrow schema of every shard and of the store's ``estimates`` table.
@@ -47,15 +50,67 @@ def versions() -> dict:
             "pyarrow": pa.__version__, "python": platform.python_version()}
 
 
-def compute_shard(spec: Mapping, search_dirs) -> pa.Table:
-    """Draw each seed block of the shard once and apply the estimator to it."""
+class ShardProblem(ValueError):
+    """A shard file is unreadable, truncated, fails its page checksums or has the wrong rows."""
+
+
+def spec_hash(spec: Mapping) -> str:
+    """Hash of everything that decides a shard's numbers except which blocks it holds."""
+    core = {k: v for k, v in spec.items() if k not in ("first_block", "n_blocks")}
+    return hashlib.sha256(canonical_json(core).encode()).hexdigest()[:16]
+
+
+def verify_shard(path: Path | str, full: bool = True) -> dict:
+    """Metadata of a sound shard; ``ShardProblem`` saying what is wrong otherwise.
+
+    The quick check reads the footer and metadata only; the full check also
+    reads every page, verifying the CRC page checksums written with it.
+    """
+    try:
+        handle = pq.ParquetFile(path, page_checksum_verification=True)
+        meta = json.loads((handle.schema_arrow.metadata or {})[METADATA_KEY])
+        rows = handle.metadata.num_rows
+        if full:
+            handle.read()
+    except Exception as exc:
+        raise ShardProblem(f"unreadable ({type(exc).__name__}: {str(exc).splitlines()[0][:160]})") from None
+    expected = meta["n_blocks"] * meta["block_size"]
+    if rows != expected or meta["rows"] != expected:
+        raise ShardProblem(f"holds {rows} rows, expected {expected}")
+    return meta
+
+
+def _reusable(out: Path, spec: Mapping, code: str) -> pa.Table | None:
+    """Rows of an existing shard made by the same spec and code (e.g. before
+    ``replicates`` grew, or before a kill), else None."""
+    if not out.exists():
+        return None
+    try:
+        meta = verify_shard(out)
+    except ShardProblem:
+        return None
+    if (meta.get("spec_hash") != spec_hash(spec) or meta.get("code_hash") != code
+            or meta["first_block"] != spec["first_block"]):
+        return None
+    return pq.read_table(out)
+
+
+def compute_shard(spec: Mapping, search_dirs, reuse: pa.Table | None = None) -> pa.Table:
+    """Draw each seed block of the shard once and apply the estimator to it.
+
+    Blocks already in *reuse* (same spec and code) are taken from it, not redrawn.
+    """
     scen, est = spec["scenario"], spec["estimator"]
     fn = plugins.resolve(est["function"], search_dirs)
     dgm = build_dgm(scen["dgm"], tuple(search_dirs), spec["seed"])
     reps, n, seed = spec["block_size"], scen["n"], spec["seed"]
     wants_rng, wants_level = plugins.accepts(fn, "rng"), plugins.accepts(fn, "level")
     parts = []
+    have = set(reuse.column("block").to_pylist()) if reuse is not None else set()
     for block in range(spec["first_block"], spec["first_block"] + spec["n_blocks"]):
+        if block in have:
+            parts.append(reuse.filter(pc.equal(reuse.column("block"), block)).replace_schema_metadata(None))
+            continue
         data = dgm.draw(block_generator(seed, scen["spawn_key"], block), reps, n)
         kwargs = dict(est.get("args", {}))
         if wants_level:
@@ -86,7 +141,7 @@ def write_atomic(table: pa.Table, out: Path, metadata: Mapping) -> None:
     table = table.replace_schema_metadata({METADATA_KEY: json.dumps(metadata, sort_keys=True)})
     tmp = out.with_name(f"{out.name}.tmp-{os.getpid()}")
     try:
-        pq.write_table(table, tmp, compression="zstd")
+        pq.write_table(table, tmp, compression="zstd", write_page_checksum=True)
         os.replace(tmp, out)
     finally:
         tmp.unlink(missing_ok=True)
@@ -95,15 +150,20 @@ def write_atomic(table: pa.Table, out: Path, metadata: Mapping) -> None:
 def run_shard(spec: Mapping, search_dirs, out: Path) -> dict:
     """Compute one shard and write it atomically; return its provenance."""
     start = time.perf_counter()
-    table = compute_shard(spec, search_dirs)
+    out = Path(out)
+    code = plugins.code_hash(plugins.code_files(spec["estimator"]["function"], search_dirs))
+    reuse = _reusable(out, spec, code)
+    table = compute_shard(spec, search_dirs, reuse)
     scen = spec["scenario"]
     meta = {
+        "spec_hash": spec_hash(spec),
+        "reused_blocks": 0 if reuse is None else len(set(reuse.column("block").to_pylist())),
         "seed": str(spec["seed"]),
         "scenario": scen["key"],
         "scenario_spawn_key": str(scen["spawn_key"]),  # block b uses spawn_key=(this, b)
         "estimator": spec["estimator"]["name"],
         "function": spec["estimator"]["function"],
-        "code_hash": plugins.code_hash(plugins.code_files(spec["estimator"]["function"], search_dirs)),
+        "code_hash": code,
         "first_block": spec["first_block"],
         "n_blocks": spec["n_blocks"],
         "block_size": spec["block_size"],
@@ -118,10 +178,7 @@ def run_shard(spec: Mapping, search_dirs, out: Path) -> dict:
 
 def read_metadata(path: Path | str) -> dict:
     """The provenance a shard carries in its Parquet metadata."""
-    meta = pq.read_schema(path).metadata or {}
-    if METADATA_KEY not in meta:
-        raise ValueError(f"{path} carries no estbench metadata")
-    return json.loads(meta[METADATA_KEY])
+    return verify_shard(path, full=False)
 
 
 def main(argv=None) -> int:

@@ -16,14 +16,13 @@ from typing import Iterable
 
 import duckdb
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from . import plugins
 from .dgms import build_dgm
 from .errors import UserError
 from .measures import compute_checks, compute_performance
 from .scenarios import canonical_json
-from .shard import SHARD_SCHEMA, read_metadata
+from .shard import SHARD_SCHEMA, ShardProblem, verify_shard
 from .study import Study
 
 _DDL = """
@@ -82,18 +81,23 @@ def open_read_only(store: Path | str) -> duckdb.DuckDBPyConnection:
         raise UserError(f"cannot open the store {store}: {exc}") from None
 
 
+#: Written beside the store when ingest removed a corrupt shard, so `estbench run` reruns it.
+RECOMPUTE_MARKER = "shards-to-recompute.txt"
+
+
 def _check_shard(path: Path, study: Study) -> dict:
-    """Metadata of a shard that is readable and whole; ``UserError`` otherwise."""
+    """Metadata of a sound shard. A corrupt one is deleted (so the next run recomputes
+    it), listed in the recompute marker, and reported as a ``UserError``."""
     try:
-        meta = read_metadata(path)
-        rows = pq.ParquetFile(path).metadata.num_rows
-    except Exception as exc:
-        raise UserError(f"shard {path} is unreadable ({type(exc).__name__}: {exc}); "
-                        f"delete it and run again to recompute it") from None
-    expected = meta["n_blocks"] * study.block_size
-    if rows != expected or meta["rows"] != expected:
-        raise UserError(f"shard {path} holds {rows} rows, expected {expected}; "
-                        f"delete it and run again to recompute it")
+        meta = verify_shard(path)
+        if meta["block_size"] != study.block_size:
+            raise ShardProblem(f"has block_size {meta['block_size']}, the study {study.block_size}")
+    except ShardProblem as exc:
+        path.unlink(missing_ok=True)
+        marker = path.parents[3] / RECOMPUTE_MARKER  # results/<study>/ of shards/<s>/<e>/<b>.parquet
+        with open(marker, "a") as fh:
+            fh.write(f"{path}\t{exc}\n")
+        raise UserError(f"shard {path} {exc}; it was removed and will be recomputed on the next run") from None
     return meta
 
 

@@ -1,9 +1,11 @@
 # One job per scenario x estimator x range of seed blocks; the engine does the work.
+# update(): Snakemake keeps an existing shard while the job runs, so a job whose
+# range grew (more replicates) or that was killed reuses the blocks already there.
 rule shard:
     input:
         code=lambda w: jobs.estimator_sources(STUDY, w.estimator),
     output:
-        f"{RESULTS}/shards/{{scenario}}/{{estimator}}/{{first_block}}.parquet",
+        update(f"{RESULTS}/shards/{{scenario}}/{{estimator}}/{{first_block}}.parquet"),
     params:
         spec=lambda w: jobs.shard_spec_json(STUDY, w.scenario, w.estimator, int(w.first_block)),
     log:

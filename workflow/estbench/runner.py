@@ -1,0 +1,217 @@
+"""``estbench run``: one guarded, resumable Snakemake run with live progress.
+
+- A study is run by one ``estbench run`` at a time per folder: an exclusive
+  ``flock`` on ``results/<study>/.run.lock`` refuses a second one. The kernel
+  drops the lock when its holder dies, even by SIGKILL, so no stale lock of
+  ours can block a later run.
+- Snakemake's own locks do go stale when it is killed. They are cleared (by
+  ``snakemake --unlock``) only when no other estbench run is alive in this
+  folder: every run holds a shared ``flock`` on ``.snakemake/estbench.gate``,
+  and clearing needs it exclusively.
+- Before Snakemake starts, existing shards get a quick check (footer, metadata,
+  row count); a bad one is removed so it is recomputed. Ingest checks every
+  page's checksum; if it removes a corrupt shard, the run goes round once more.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import os
+import subprocess
+import sys
+import threading
+import time
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+
+from . import jobs
+from .errors import UserError
+from .paths import SNAKEFILE, results_dir
+from .shard import ShardProblem, verify_shard
+from .store import RECOMPUTE_MARKER
+from .study import Study
+
+
+@contextmanager
+def study_lock(study: Study, workdir: Path):
+    """Hold the study's run lock; ``UserError`` if another run holds it."""
+    out = results_dir(study.name, workdir)
+    out.mkdir(parents=True, exist_ok=True)
+    fh = open(out / ".run.lock", "a+")
+    try:
+        fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        fh.seek(0)
+        holder = fh.read().strip() or "unknown"
+        fh.close()
+        raise UserError(f"another `estbench run` of study {study.name!r} is in progress in this folder "
+                        f"(pid {holder}); wait for it to finish or stop it first") from None
+    fh.seek(0)
+    fh.truncate()
+    fh.write(str(os.getpid()))
+    fh.flush()
+    try:
+        yield
+    finally:
+        fh.close()
+
+
+@contextmanager
+def folder_gate(workdir: Path):
+    """Shared lock marking 'an estbench run is alive in this folder'."""
+    state = workdir / ".snakemake"
+    state.mkdir(exist_ok=True)
+    fh = open(state / "estbench.gate", "a+")
+    fcntl.flock(fh, fcntl.LOCK_SH)
+    try:
+        yield fh
+    finally:
+        fh.close()
+
+
+def clear_stale_snakemake_locks(gate, snakefile_args: list[str], workdir: Path) -> bool:
+    """Remove Snakemake's locks if no other estbench run is alive here; True if removed."""
+    locks = workdir / ".snakemake" / "locks"
+    if not locks.is_dir() or not any(locks.iterdir()):
+        return False
+    try:
+        fcntl.flock(gate, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        return False  # another estbench run in this folder: its locks are live
+    try:
+        subprocess.run([*snakefile_args, "--unlock"], cwd=workdir, capture_output=True, check=True)
+    finally:
+        fcntl.flock(gate, fcntl.LOCK_SH)
+    return True
+
+
+def remove_bad_shards(study: Study, workdir: Path) -> list[str]:
+    """Quick-check every existing shard; delete the bad ones so they are recomputed."""
+    removed = []
+    for path in jobs.shard_paths(study, workdir):
+        if not path.exists():
+            continue
+        try:
+            verify_shard(path, full=False)
+        except ShardProblem as exc:
+            path.unlink(missing_ok=True)
+            removed.append(f"{path.relative_to(workdir)} {exc}")
+    return removed
+
+
+@dataclass
+class Progress:
+    """Counts shards and replicates on disk while Snakemake runs, and prints one status line."""
+
+    study: Study
+    workdir: Path
+    stream: object = sys.stderr
+
+    def __post_init__(self):
+        self.expected = {p: rows for p, rows in jobs.shard_rows(self.study, self.workdir)}
+        self.total_rows = sum(self.expected.values())
+        self.start = time.monotonic()
+        self.done_at_start = self._done()[0]
+        self._stop = threading.Event()
+
+    def _done(self) -> tuple[int, int]:
+        shards = rows = 0
+        for path, n in self.expected.items():
+            if path.exists():
+                shards += 1
+                rows += n
+        return shards, rows
+
+    def line(self) -> str:
+        shards, rows = self._done()
+        elapsed = time.monotonic() - self.start
+        fresh = shards - self.done_at_start
+        left = len(self.expected) - shards
+        if left == 0:
+            eta = "simulation done; ingest and report"
+        elif fresh > 0:
+            eta = f"about {_duration(elapsed / fresh * left)} left"
+        else:
+            eta = "estimating time left"
+        return (f"shards {shards}/{len(self.expected)} · replicates {rows:,}/{self.total_rows:,} "
+                f"· {_duration(elapsed)} elapsed · {eta}")
+
+    def _loop(self, interval: float, tty: bool):
+        last = ""
+        while not self._stop.wait(interval):
+            text = self.line()
+            if tty:
+                self.stream.write("\r\033[K" + text)
+                self.stream.flush()
+            elif text != last:
+                self.stream.write(text + "\n")
+                self.stream.flush()
+            last = text
+
+    @contextmanager
+    def shown(self):
+        tty = hasattr(self.stream, "isatty") and self.stream.isatty()
+        thread = threading.Thread(target=self._loop, args=(0.5 if tty else 10.0, tty), daemon=True)
+        thread.start()
+        try:
+            yield
+        finally:
+            self._stop.set()
+            thread.join()
+            self.stream.write(("\r\033[K" if tty else "") + self.line() + "\n")
+            self.stream.flush()
+
+
+def _duration(seconds: float) -> str:
+    seconds = int(round(seconds))
+    h, rest = divmod(seconds, 3600)
+    m, s = divmod(rest, 60)
+    return f"{h}h{m:02d}m" if h else (f"{m}m{s:02d}s" if m else f"{s}s")
+
+
+def snakemake_base(study_file: Path, workdir: Path) -> list[str]:
+    return [sys.executable, "-m", "snakemake", "--snakefile", str(SNAKEFILE),
+            "--directory", str(workdir), "--configfile", str(study_file.resolve())]
+
+
+def snakemake_command(study_file: Path, workdir: Path, cores: int, extra: list[str]) -> list[str]:
+    """The Snakemake call behind ``estbench run``."""
+    return [*snakemake_base(study_file, workdir), "--cores", str(cores), "--scheduler", "greedy",
+            "--rerun-incomplete", *extra]
+
+
+def run_study(study: Study, study_file: Path, workdir: Path, cores: int, extra: list[str],
+              verbose: bool = False) -> int:
+    """Run (or resume) the study; returns Snakemake's exit status."""
+    workdir = workdir.resolve()
+    with study_lock(study, workdir), folder_gate(workdir) as gate:
+        if clear_stale_snakemake_locks(gate, snakemake_base(study_file, workdir), workdir):
+            print("estbench: cleared Snakemake's locks left by a run that was killed", file=sys.stderr)
+        for line in remove_bad_shards(study, workdir):
+            print(f"estbench: removed a damaged shard, to be recomputed: {line}", file=sys.stderr)
+        cmd = snakemake_command(study_file, workdir, cores, extra)
+        marker = results_dir(study.name, workdir) / RECOMPUTE_MARKER
+        for attempt in (1, 2):
+            marker.unlink(missing_ok=True)
+            code = _call(cmd, study, workdir, verbose)
+            if code == 0 or not marker.exists() or attempt == 2:
+                return code
+            print("estbench: ingest found damaged shards (listed in "
+                  f"{marker.relative_to(workdir)}); recomputing them", file=sys.stderr)
+    return code
+
+
+def _call(cmd: list[str], study: Study, workdir: Path, verbose: bool) -> int:
+    if verbose:
+        return subprocess.call(cmd, cwd=workdir)
+    logs = results_dir(study.name, workdir) / "logs"
+    logs.mkdir(parents=True, exist_ok=True)
+    log = logs / f"snakemake-{time.strftime('%Y%m%dT%H%M%S')}.log"
+    with open(log, "w") as fh, Progress(study, workdir).shown():
+        code = subprocess.call(cmd, cwd=workdir, stdout=fh, stderr=subprocess.STDOUT)
+    if code != 0:
+        tail = log.read_text(errors="replace").splitlines()[-25:]
+        print("\n".join(["estbench: Snakemake stopped with an error; the end of its log:", *tail,
+                         f"estbench: full log: {log.relative_to(workdir)}"]), file=sys.stderr)
+    return code
