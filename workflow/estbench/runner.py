@@ -190,28 +190,42 @@ def run_study(study: Study, study_file: Path, workdir: Path, cores: int, extra: 
             print("estbench: cleared Snakemake's locks left by a run that was killed", file=sys.stderr)
         for line in remove_bad_shards(study, workdir):
             print(f"estbench: removed a damaged shard, to be recomputed: {line}", file=sys.stderr)
-        cmd = snakemake_command(study_file, workdir, cores, extra)
         marker = results_dir(study.name, workdir) / RECOMPUTE_MARKER
         for attempt in (1, 2):
             marker.unlink(missing_ok=True)
-            code = _call(cmd, study, workdir, verbose)
-            if code == 0 or not marker.exists() or attempt == 2:
-                return code
-            print("estbench: ingest found damaged shards (listed in "
-                  f"{marker.relative_to(workdir)}); recomputing them", file=sys.stderr)
+            cmd = snakemake_command(study_file, workdir, cores, [*_force_if_shards_missing(study, workdir), *extra])
+            code, log = _call(cmd, study, workdir, verbose)
+            if code == 0:
+                return 0
+            if marker.exists() and attempt == 1:
+                print("estbench: ingest found damaged shards (listed in "
+                      f"{marker.relative_to(workdir)}); recomputing them", file=sys.stderr)
+                continue
+            if log is not None:
+                tail = log.read_text(errors="replace").splitlines()[-25:]
+                print("\n".join(["estbench: Snakemake stopped with an error; the end of its log:", *tail,
+                                 f"estbench: full log: {log.relative_to(workdir)}"]), file=sys.stderr)
+            return code
     return code
 
 
-def _call(cmd: list[str], study: Study, workdir: Path, verbose: bool) -> int:
+def _force_if_shards_missing(study: Study, workdir: Path) -> list[str]:
+    """Snakemake does not rebuild a missing intermediate file while the files made
+    from it are present and newer, so a removed shard would never come back: when
+    the store exists and a shard is missing, force the ingest rule, which needs it."""
+    store = results_dir(study.name, workdir) / "store.duckdb"
+    if store.exists() and any(not p.exists() for p in jobs.shard_paths(study, workdir)):
+        return ["--forcerun", "ingest"]
+    return []
+
+
+def _call(cmd: list[str], study: Study, workdir: Path, verbose: bool) -> tuple[int, Path | None]:
+    """Run Snakemake: with its output on the terminal, or into a log under a progress line."""
     if verbose:
-        return subprocess.call(cmd, cwd=workdir)
+        return subprocess.call(cmd, cwd=workdir), None
     logs = results_dir(study.name, workdir) / "logs"
     logs.mkdir(parents=True, exist_ok=True)
     log = logs / f"snakemake-{time.strftime('%Y%m%dT%H%M%S')}.log"
     with open(log, "w") as fh, Progress(study, workdir).shown():
         code = subprocess.call(cmd, cwd=workdir, stdout=fh, stderr=subprocess.STDOUT)
-    if code != 0:
-        tail = log.read_text(errors="replace").splitlines()[-25:]
-        print("\n".join(["estbench: Snakemake stopped with an error; the end of its log:", *tail,
-                         f"estbench: full log: {log.relative_to(workdir)}"]), file=sys.stderr)
-    return code
+    return code, log
