@@ -37,10 +37,34 @@ def cmd_check(args) -> int:
     return 0
 
 
+def _profile_args(profile: str | None) -> list[str]:
+    """``--profile`` for Snakemake: a folder, or a name under workflow/profiles/."""
+    if profile is None:
+        return []
+    from .paths import PROFILES_DIR
+    for folder in (Path(profile), PROFILES_DIR / profile):
+        if (folder / "config.yaml").is_file():
+            return ["--profile", str(folder.resolve())]
+    names = ", ".join(sorted(p.name for p in PROFILES_DIR.iterdir() if (p / "config.yaml").is_file()))
+    raise UserError(f"`--profile`: {profile!r} is neither a folder with a config.yaml nor one of the "
+                    f"profiles under workflow/profiles/ ({names})")
+
+
 def cmd_run(args) -> int:
+    from .precision import run_until_precise, with_allocation
     from .runner import run_study
     study = _load(args.study)
-    code = run_study(study, args.study, Path.cwd(), args.cores, args.snakemake_args, args.verbose)
+
+    extra = [*_profile_args(args.profile), *args.snakemake_args]
+
+    def run(s):
+        return run_study(s, args.study, Path.cwd(), args.cores, extra, args.verbose)
+
+    if args.until_precise:
+        code = run_until_precise(study, run, args.max_replicates, Path.cwd(),
+                                 say=lambda text: print(text, file=sys.stderr))
+    else:
+        code = run(with_allocation(study))
     if code == 0:
         out = results_dir(study.name)
         print(f"estbench: done. Report: {out / 'report.html'}  Measures: {out / 'performance.csv'}")
@@ -49,7 +73,8 @@ def cmd_run(args) -> int:
 
 def cmd_status(args) -> int:
     from . import jobs
-    study = _load(args.study)
+    from .precision import with_allocation
+    study = with_allocation(_load(args.study))
     shards = jobs.shard_paths(study)
     done = sum(p.exists() for p in shards)
     print(f"study {study.name!r}: {done} of {len(shards)} shards done, {len(shards) - done} to do")
@@ -173,6 +198,13 @@ def build_parser() -> argparse.ArgumentParser:
     _study_arg(p)
     p.add_argument("--cores", type=int, default=os.cpu_count() or 1,
                    help="cores to use (default: all, here %(default)s)")
+    p.add_argument("--until-precise", action="store_true",
+                   help="treat `replicates` as a pilot, then add seed blocks scenario by scenario until "
+                        "every MCSE target in `targets` is met (or --max-replicates is reached)")
+    p.add_argument("--max-replicates", type=int, default=1_000_000,
+                   help="with --until-precise: most replicates per scenario (default %(default)s)")
+    p.add_argument("--profile", metavar="NAME_OR_DIR",
+                   help="Snakemake profile: a folder, or a name under workflow/profiles/ (e.g. slurm)")
     p.add_argument("--verbose", action="store_true",
                    help="show Snakemake's own output instead of the progress line")
     p.set_defaults(func=cmd_run, snakemake_args=[])

@@ -25,10 +25,14 @@ def shard_paths(study: Study, workdir: Path | str = ".") -> list[Path]:
 
 def shard_rows(study: Study, workdir: Path | str = ".") -> list[tuple[Path, int]]:
     """Every shard with the number of replicates it holds."""
-    first_blocks = study.job_first_blocks()
-    rows = {b: min(study.blocks_per_job, study.n_blocks - b) * study.block_size for b in first_blocks}
-    return [(shard_path(study.name, s.key, e, b, workdir), rows[b])
-            for s in study.scenarios for e in study.estimators for b in first_blocks]
+    out = []
+    for s in study.scenarios:
+        blocks = study.blocks_of(s.key)
+        for e in study.estimators:
+            for b in study.job_first_blocks(s.key):
+                out.append((shard_path(study.name, s.key, e, b, workdir),
+                            min(study.blocks_per_job, blocks - b) * study.block_size))
+    return out
 
 
 def scenario_by_key(study: Study, key: str):
@@ -47,7 +51,7 @@ def shard_spec(study: Study, scenario: str, estimator: str, first_block: int) ->
         "seed": study.seed,
         "block_size": study.block_size,
         "first_block": first_block,
-        "n_blocks": min(study.blocks_per_job, study.n_blocks - first_block),
+        "n_blocks": min(study.blocks_per_job, study.blocks_of(scenario) - first_block),
         "scenario": {"key": s.key, "spawn_key": s.spawn_key, "dgm": s.spec, "n": s.n},
         "estimator": {"name": e.name, "function": e.function, "args": dict(e.args)},
     }

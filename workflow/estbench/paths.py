@@ -11,6 +11,7 @@ SCHEMA_FILE = PROJECT_ROOT / "workflow" / "schemas" / "study.schema.yaml"
 BUILTIN_ESTIMATORS = PROJECT_ROOT / "estimators"
 REPORT_TEMPLATES = PROJECT_ROOT / "reports"
 DEFAULT_STUDY = PROJECT_ROOT / "config" / "config.yaml"
+PROFILES_DIR = PROJECT_ROOT / "workflow" / "profiles"
 
 
 def results_dir(study_name: str, workdir: Path | str = ".") -> Path:

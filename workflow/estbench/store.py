@@ -25,19 +25,30 @@ from .scenarios import canonical_json
 from .shard import SHARD_SCHEMA, ShardProblem, verify_shard
 from .study import Study
 
-_DDL = """
-CREATE TABLE IF NOT EXISTS study (
+#: Tables describing the study; rebuilt by every ingest, so they follow the code's schema.
+_STUDY_DDL = """
+CREATE OR REPLACE TABLE study (
     name VARCHAR, description VARCHAR, seed VARCHAR, replicates BIGINT,
     replicates_run BIGINT, block_size BIGINT, blocks_per_job BIGINT, n_blocks BIGINT,
     level DOUBLE, reference VARCHAR, targets VARCHAR, study_yaml VARCHAR, ingested_at VARCHAR);
-CREATE TABLE IF NOT EXISTS scenarios (
+CREATE OR REPLACE TABLE scenarios (
     scenario VARCHAR PRIMARY KEY, dgm VARCHAR, n BIGINT, spec VARCHAR, swept VARCHAR,
-    dgm_description VARCHAR, position BIGINT);
-CREATE TABLE IF NOT EXISTS truths (
+    dgm_description VARCHAR, position BIGINT, replicates BIGINT);
+CREATE OR REPLACE TABLE truths (
     scenario VARCHAR, estimand VARCHAR, value DOUBLE, mcse DOUBLE, crb DOUBLE);
-CREATE TABLE IF NOT EXISTS estimators (
+CREATE OR REPLACE TABLE estimators (
     estimator VARCHAR PRIMARY KEY, function VARCHAR, target VARCHAR, args VARCHAR,
     description VARCHAR, code_hash VARCHAR, is_reference BOOLEAN, position BIGINT);
+CREATE OR REPLACE VIEW truth AS
+    SELECT t.scenario, e.estimator, t.value AS truth
+    FROM truths t JOIN estimators e ON t.estimand = e.target;
+CREATE OR REPLACE VIEW crb AS
+    SELECT t.scenario, e.estimator, t.crb
+    FROM truths t JOIN estimators e ON t.estimand = e.target WHERE isfinite(t.crb);
+"""
+
+#: Tables of results; kept across ingests.
+_DDL = """
 CREATE TABLE IF NOT EXISTS shards (
     path VARCHAR PRIMARY KEY, scenario VARCHAR, estimator VARCHAR, first_block BIGINT,
     n_blocks BIGINT, rows BIGINT, bytes BIGINT, sha256 VARCHAR, ingested_at VARCHAR);
@@ -48,12 +59,6 @@ CREATE TABLE IF NOT EXISTS provenance (
 CREATE TABLE IF NOT EXISTS estimates (
     scenario VARCHAR, estimator VARCHAR, block BIGINT, rep BIGINT, estimate DOUBLE,
     se DOUBLE, ci_low DOUBLE, ci_high DOUBLE, p_value DOUBLE, status VARCHAR, message VARCHAR);
-CREATE OR REPLACE VIEW truth AS
-    SELECT t.scenario, e.estimator, t.value AS truth
-    FROM truths t JOIN estimators e ON t.estimand = e.target;
-CREATE OR REPLACE VIEW crb AS
-    SELECT t.scenario, e.estimator, t.crb
-    FROM truths t JOIN estimators e ON t.estimand = e.target WHERE isfinite(t.crb);
 """
 #: Derived tables, rebuilt from the estimates by every ingest.
 DERIVED = ("performance", "checks")
@@ -108,8 +113,7 @@ def _sql_str(path) -> str:
 def _write_study_tables(con, study: Study) -> None:
     import yaml
     now = time.strftime("%Y-%m-%dT%H:%M:%S%z")
-    for table in ("study", "scenarios", "truths", "estimators"):
-        con.execute(f"DELETE FROM {table}")
+    con.execute(_STUDY_DDL)
     con.execute("INSERT INTO study VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)", [
         study.name, study.description, str(study.seed), study.replicates, study.replicates_run,
         study.block_size, study.blocks_per_job, study.n_blocks, study.level, study.reference,
@@ -117,11 +121,12 @@ def _write_study_tables(con, study: Study) -> None:
     scen_rows, truth_rows = [], []
     for pos, s in enumerate(study.scenarios):
         scen_rows.append([s.key, s.dgm, s.n, canonical_json(s.spec), json.dumps(s.swept),
-                          study.dgms[s.dgm].get("description", ""), pos])
+                          study.dgms[s.dgm].get("description", ""), pos,
+                          study.blocks_of(s.key) * study.block_size])
         dgm = build_dgm(s.spec, study.search_dirs, study.seed)
         truth_rows += [[s.key, e, dgm.truth(e), dgm.truth_mcse(e), dgm.crb(e, s.n)]
                        for e in dgm.estimands()]
-    con.executemany("INSERT INTO scenarios VALUES (?,?,?,?,?,?,?)", scen_rows)
+    con.executemany("INSERT INTO scenarios VALUES (?,?,?,?,?,?,?,?)", scen_rows)
     con.executemany("INSERT INTO truths VALUES (?,?,?,?,?)", truth_rows)
     est_rows = []
     for pos, e in enumerate(study.estimators.values()):

@@ -104,7 +104,7 @@ def _rule_text(err: jsonschema.ValidationError) -> str:
 def schema_problems(raw: Any, schema: dict | None = None) -> list[str]:
     """Every schema violation of *raw* as one line each, sorted by key path."""
     schema = schema or load_schema()
-    validator = jsonschema.Draft7Validator(schema)
+    validator = jsonschema.Draft202012Validator(schema)
     problems = []
     for err in validator.iter_errors(raw):
         path = list(err.absolute_path)
@@ -156,6 +156,7 @@ class Study:
     report: Mapping              #: report-only options (tolerance, zip, asymptotic_efficiency)
     source: Path | None          #: the study file, when loaded from one
     raw: Mapping                 #: the mapping as written, for the report appendix
+    allocation: Mapping = field(default_factory=dict)  #: scenario key -> seed blocks, from --until-precise
 
     @property
     def n_blocks(self) -> int:
@@ -176,9 +177,13 @@ class Study:
     def scenarios(self) -> list[Scenario]:
         return expand_study(self.dgms, self.sample_sizes)
 
-    def job_first_blocks(self) -> list[int]:
+    def job_first_blocks(self, scenario: str | None = None) -> list[int]:
         """First seed block of every shard of a scenario x estimator."""
-        return list(range(0, self.n_blocks, self.blocks_per_job))
+        return list(range(0, self.blocks_of(scenario), self.blocks_per_job))
+
+    def blocks_of(self, scenario: str | None) -> int:
+        """Seed blocks of one scenario: ``n_blocks``, or more where precision asked for them."""
+        return max(self.n_blocks, int(self.allocation.get(scenario, 0))) if scenario else self.n_blocks
 
 
 def _variants(params: Mapping):

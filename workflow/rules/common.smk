@@ -6,6 +6,7 @@ from pathlib import Path
 from snakemake.utils import validate
 
 from estbench import jobs, paths
+from estbench.precision import with_allocation
 from estbench.study import study_from_mapping
 
 if not workflow.configfiles:
@@ -13,7 +14,7 @@ if not workflow.configfiles:
 
 STUDY_FILE = str(Path(workflow.configfiles[-1]).resolve())
 validate(config, str(paths.SCHEMA_FILE))
-STUDY = study_from_mapping(config, source=Path(STUDY_FILE))
+STUDY = with_allocation(study_from_mapping(config, source=Path(STUDY_FILE)))
 
 PYTHON = shlex.quote(sys.executable)
 SEARCH_ARGS = " ".join(f"--search-dir {shlex.quote(d)}" for d in STUDY.search_dirs)

@@ -2,9 +2,10 @@
 import json
 from pathlib import Path
 
+from estbench.precision import with_allocation
 from estbench.store import ingest
 from estbench.study import study_from_mapping
 
-study = study_from_mapping(snakemake.config, source=Path(snakemake.input.study))  # noqa: F821
+study = with_allocation(study_from_mapping(snakemake.config, source=Path(snakemake.input.study)))  # noqa: F821
 summary = ingest(snakemake.output[0], study, snakemake.input.shards)  # noqa: F821
 Path(snakemake.log[0]).write_text(json.dumps(summary) + "\n")  # noqa: F821
