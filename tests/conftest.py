@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+import signal
 import subprocess
 import sys
 from pathlib import Path
@@ -39,10 +41,22 @@ def write_study(directory: Path, study: dict, name: str = "study.yaml") -> Path:
     return path
 
 
-def run_cli(*args, cwd: Path, check: bool = False, timeout: float = 300) -> subprocess.CompletedProcess:
-    """Run ``estbench ARGS`` in *cwd* the way a user does, capturing output."""
-    proc = subprocess.run([sys.executable, "-m", "estbench.cli", *map(str, args)], cwd=cwd,
-                          capture_output=True, text=True, timeout=timeout)
+def run_cli(*args, cwd: Path, check: bool = False, timeout: float = 600) -> subprocess.CompletedProcess:
+    """Run ``estbench ARGS`` in *cwd* the way a user does, capturing output.
+
+    On a timeout the whole process group goes (estbench and the Snakemake it
+    started), so no orphan keeps polling a cluster after the test.
+    """
+    child = subprocess.Popen([sys.executable, "-m", "estbench.cli", *map(str, args)], cwd=cwd,
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                             start_new_session=True)
+    try:
+        out, err = child.communicate(timeout=timeout)
+    except subprocess.TimeoutExpired:
+        os.killpg(child.pid, signal.SIGKILL)
+        out, err = child.communicate()
+        raise AssertionError(f"estbench {' '.join(map(str, args))} did not finish in {timeout} s:\n{out}\n{err}")
+    proc = subprocess.CompletedProcess(child.args, child.returncode, out, err)
     if check and proc.returncode != 0:
         raise AssertionError(f"estbench {' '.join(map(str, args))} failed ({proc.returncode}):\n"
                              f"{proc.stdout}\n{proc.stderr}")

@@ -14,6 +14,7 @@ import hashlib
 import json
 import os
 import platform
+import resource
 import sys
 import time
 from pathlib import Path
@@ -170,6 +171,7 @@ def run_shard(spec: Mapping, search_dirs, out: Path) -> dict:
         "rows": table.num_rows,
         "versions": versions(),
         "seconds": round(time.perf_counter() - start, 6),
+        "max_rss_mb": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1),
         "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
     }
     write_atomic(table, out, meta)
