@@ -1,0 +1,144 @@
+"""Pipeline cost against the vectorised limit and the per-replicate loop, side by side.
+
+    .venv/bin/python benchmarks/pipeline.py [--replicates 10000 100000] [--repeats 3]
+                                            [--with-million] [--cores 2]
+
+Reference study: normal data, n in {10, 20, 50, 100, 200, 500, 1000}, estimators
+mean, median, 10% trimmed mean and SD. For each replicate count it times, in one
+run and in alternation (median over --repeats):
+
+- limit: one process draws every seed block once, with the study's own streams,
+  and applies the four estimators to it; no files, no Snakemake;
+- loop: the per-replicate script most studies start as (draw one dataset, apply
+  each estimator, append), timed on a subsample and scaled up linearly;
+- estbench: a cold ``estbench run`` in a fresh folder, all stages (shards,
+  ingest, report).
+
+It prints the ratios the issue asks for and the largest shard-job memory
+(recorded by each job in its shard's metadata). Timings are wall-clock seconds
+on this machine; only the ratios are meant to travel.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import yaml
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path[:0] = [str(ROOT / "workflow"), str(ROOT / "estimators")]
+
+from estbench.dgms import build_dgm  # noqa: E402
+from estbench.plugins import resolve, search_path  # noqa: E402
+from estbench.seeding import block_generator  # noqa: E402
+from estbench.study import study_from_mapping  # noqa: E402
+
+SAMPLE_SIZES = [10, 20, 50, 100, 200, 500, 1000]
+ESTIMATORS = {
+    "mean": {"function": "location:mean", "target": "mean"},
+    "median": {"function": "location:median", "target": "mean"},
+    "trimmed_10": {"function": "location:trimmed_mean", "target": "mean", "args": {"proportion": 0.1}},
+    "sd": {"function": "scale:sd", "target": "sd"},
+}
+
+
+def reference_study(replicates: int) -> dict:
+    block = 1000
+    blocks = -(-replicates // block)
+    return {
+        "study": f"bench-{replicates}", "seed": 2026, "replicates": replicates,
+        "block_size": block, "blocks_per_job": max(1, blocks),  # one job per scenario x estimator
+        "sample_sizes": SAMPLE_SIZES,
+        "dgms": {"normal": {"distribution": "norm", "params": {"loc": 0.0, "scale": 1.0}}},
+        "estimators": ESTIMATORS, "reference": "mean",
+    }
+
+
+def time_limit(raw: dict) -> float:
+    """The vectorised limit: draw each block once, apply every estimator, keep nothing."""
+    study = study_from_mapping(raw)
+    fns = {name: resolve(e.function, search_path(None)) for name, e in study.estimators.items()}
+    start = time.perf_counter()
+    for s in study.scenarios:
+        dgm = build_dgm(s.spec)
+        for b in range(study.n_blocks):
+            data = dgm.draw(block_generator(study.seed, s.spawn_key, b), study.block_size, s.n)
+            for name, e in study.estimators.items():
+                fns[name](data, **e.args)
+    return time.perf_counter() - start
+
+
+def time_loop(raw: dict, subsample: int = 400) -> float:
+    """The common per-replicate script, timed on *subsample* replicates per n and scaled."""
+    from scipy import stats
+    rng = np.random.default_rng(raw["seed"])
+    start = time.perf_counter()
+    rows = []
+    for n in raw["sample_sizes"]:
+        for _ in range(subsample):
+            x = rng.normal(0.0, 1.0, size=n)
+            rows.append((n, "mean", float(np.mean(x))))
+            rows.append((n, "median", float(np.median(x))))
+            rows.append((n, "trimmed_10", float(stats.trim_mean(x, 0.1))))
+            rows.append((n, "sd", float(np.std(x, ddof=1))))
+    return (time.perf_counter() - start) * raw["replicates"] / subsample
+
+
+def time_estbench(raw: dict, cores: int) -> tuple[float, float]:
+    """Cold end-to-end run in a fresh folder; returns (seconds, largest shard-job RSS in MB)."""
+    with tempfile.TemporaryDirectory(prefix="estbench-bench-") as tmp:
+        path = Path(tmp) / "study.yaml"
+        path.write_text(yaml.safe_dump(raw, sort_keys=False))
+        start = time.perf_counter()
+        subprocess.run([sys.executable, "-m", "estbench.cli", "run", str(path), "--cores", str(cores)],
+                       cwd=tmp, check=True, capture_output=True)
+        seconds = time.perf_counter() - start
+        import pyarrow.parquet as pq
+        rss = max(json.loads(pq.read_schema(p).metadata[b"estbench"]).get("max_rss_mb", 0)
+                  for p in (Path(tmp) / "results").rglob("*.parquet"))
+    return seconds, rss
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--replicates", type=int, nargs="+", default=[10_000, 100_000])
+    parser.add_argument("--with-million", action="store_true", help="add the 10^6-replicate row")
+    parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--cores", type=int, default=os.cpu_count() or 1)
+    args = parser.parse_args()
+    counts = args.replicates + ([1_000_000] if args.with_million else [])
+    print(f"machine: {os.cpu_count()} cores; estbench run --cores {args.cores}; "
+          f"{time.strftime('%Y-%m-%d %H:%M')}; medians of {args.repeats} repeats")
+    results = {}
+    for reps in counts:
+        raw = reference_study(reps)
+        runs = {"limit": [], "loop": [], "estbench": [], "rss": []}
+        for _ in range(args.repeats):  # alternate, so load changes hit every variant alike
+            runs["limit"].append(time_limit(raw))
+            runs["loop"].append(time_loop(raw))
+            seconds, rss = time_estbench(raw, args.cores)
+            runs["estbench"].append(seconds)
+            runs["rss"].append(rss)
+        results[reps] = {k: statistics.median(v) for k, v in runs.items()}
+    header = ("replicates", "limit s", "loop s", "estbench s", "estbench/limit", "loop/estbench",
+              "max shard RSS MB")
+    print(" | ".join(header))
+    for reps, r in results.items():
+        print(" | ".join([f"{reps:,}", f"{r['limit']:.1f}", f"{r['loop']:.1f}", f"{r['estbench']:.1f}",
+                          f"{r['estbench'] / r['limit']:.2f}", f"{r['loop'] / r['estbench']:.1f}",
+                          f"{r['rss']:.0f}"]))
+    if 100_000 in results and 1_000_000 in results:
+        print(f"growth 10^5 -> 10^6: {results[1_000_000]['estbench'] / results[100_000]['estbench']:.2f}x")
+
+
+if __name__ == "__main__":
+    main()
