@@ -185,6 +185,15 @@ def cmd_new(args) -> int:
     return 0
 
 
+def _verb(sub, name: str, func, help: str, description: str, study: bool = True) -> argparse.ArgumentParser:
+    """Add one verb; most take the study file as their optional positional argument."""
+    p = sub.add_parser(name, help=help, description=description)
+    if study:
+        _study_arg(p)
+    p.set_defaults(func=func)
+    return p
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="estbench",
@@ -192,10 +201,9 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"estbench {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    p = sub.add_parser("run", help="run the whole study (simulate, ingest, report)",
-                       description="Run the study through Snakemake; results go to ./results/<study>/. "
-                                   "Finished shards are kept, so running again resumes.")
-    _study_arg(p)
+    p = _verb(sub, "run", cmd_run, "run the whole study (simulate, ingest, report)",
+              "Run the study through Snakemake; results go to ./results/<study>/. "
+              "Finished shards are kept, so running again resumes.")
     p.add_argument("--cores", type=int, default=os.cpu_count() or 1,
                    help="cores to use (default: all, here %(default)s)")
     p.add_argument("--until-precise", action="store_true",
@@ -207,49 +215,33 @@ def build_parser() -> argparse.ArgumentParser:
                    help="Snakemake profile: a folder, or a name under workflow/profiles/ (e.g. slurm)")
     p.add_argument("--verbose", action="store_true",
                    help="show Snakemake's own output instead of the progress line")
-    p.set_defaults(func=cmd_run, snakemake_args=[])
+    p.set_defaults(snakemake_args=[])
     p.epilog = "Arguments after a lone -- go to Snakemake unchanged, e.g. estbench run -- --dry-run."
 
-    p = sub.add_parser("check", help="validate a study file and say what it would run",
-                       description="Validate the study file (schema and meaning) without running anything.")
-    _study_arg(p)
-    p.set_defaults(func=cmd_check)
-
-    p = sub.add_parser("status", help="shards done and to do, replicates in the store",
-                       description="Count finished shards and the replicates already in the store.")
-    _study_arg(p)
-    p.set_defaults(func=cmd_status)
-
-    p = sub.add_parser("plan", help="replicates needed to meet the MCSE targets",
-                       description="For every scenario x estimator x targeted measure: the MCSE so far, "
-                                   "the target and the replicates needed (n_sim = Var/MCSE^2; for a "
-                                   "share such as coverage C(1-C)/MCSE^2). Before any run, the worst case.")
-    _study_arg(p)
+    _verb(sub, "check", cmd_check, "validate a study file and say what it would run",
+          "Validate the study file (schema and meaning) without running anything.")
+    _verb(sub, "status", cmd_status, "shards done and to do, replicates in the store",
+          "Count finished shards and the replicates already in the store.")
+    p = _verb(sub, "plan", cmd_plan, "replicates needed to meet the MCSE targets",
+              "For every scenario x estimator x targeted measure: the MCSE so far, the target and "
+              "the replicates needed (n_sim = Var/MCSE^2; for a share such as coverage "
+              "C(1-C)/MCSE^2). Before any run, the worst case.")
     p.add_argument("--sd", type=float, default=None,
                    help="before any run: a guess of the SD of the estimates, for bias/empse/mse/rmse targets")
-    p.set_defaults(func=cmd_plan)
-
-    p = sub.add_parser("report", help="re-render report.html and performance.csv from the store",
-                       description="Render the report and CSV from the store alone; simulates nothing.")
-    _study_arg(p)
-    p.set_defaults(func=cmd_report)
-
-    p = sub.add_parser("new", help="scaffold a new estimator module and its test",
-                       description="Write NAME.py (a commented estimator to fill in) and test_NAME.py "
-                                   "in --dir (default: the current folder, where a study file beside "
-                                   "them finds the module).")
+    _verb(sub, "report", cmd_report, "re-render report.html and the CSVs from the store",
+          "Render the report and CSVs from the store alone; simulates nothing.")
+    p = _verb(sub, "new", cmd_new, "scaffold a new estimator module and its test",
+              "Write NAME.py (a commented estimator to fill in) and test_NAME.py in --dir (default: "
+              "the current folder, where a study file beside them finds the module).", study=False)
     p.add_argument("kind", choices=["estimator"], help="what to create")
     p.add_argument("name", help="the estimator's module and function name")
     p.add_argument("--dir", type=Path, default=Path("."), help="folder to write into (default: .)")
-    p.set_defaults(func=cmd_new)
-
-    p = sub.add_parser("query", help="read-only SQL against the store, CSV to stdout",
-                       description="Run one read-only SQL query against the study's store. Tables: study, "
-                                   "scenarios, truths, estimators, shards, provenance, estimates, performance.")
+    p = _verb(sub, "query", cmd_query, "read-only SQL against the store, CSV to stdout",
+              "Run one read-only SQL query against the study's store. Tables: study, scenarios, "
+              "truths, estimators, shards, provenance, estimates, performance, checks.", study=False)
     p.add_argument("sql", help="the SQL query")
     p.add_argument("--study", type=Path, default=DEFAULT_STUDY,
                    help=f"study file (default: {DEFAULT_STUDY})")
-    p.set_defaults(func=cmd_query)
     return parser
 
 
