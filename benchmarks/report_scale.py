@@ -1,0 +1,186 @@
+"""How long rendering the report takes, and how much memory, on a large store.
+
+Builds a store of 20 scenarios (4 DGMs x 5 sample sizes) x 5 estimators x
+10^5 replicates = 10^7 estimate rows, each with an SE, an interval and a
+p-value, through the real ingest path (Parquet shards with provenance ->
+``estbench.store.ingest``). The estimates are synthesised (normal errors with
+each estimator's own spread, a few failures with messages), not computed by
+the estimators: this measures the report, not the simulation. Then it runs
+``estbench.report.render`` in a fresh process and prints its wall time and
+peak resident memory next to the size the estimates would take as numpy
+arrays — the render must never load them all. The peak includes DuckDB's
+cache of the store's blocks and its join tables, which it frees on close.
+
+Run:  .venv/bin/python benchmarks/report_scale.py [--reps 100000] [--keep DIR]
+Target (issue 5): under 15 s on a 2-core machine.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import yaml
+from scipy import stats
+
+from estbench.paths import shard_path
+from estbench.shard import SHARD_SCHEMA, versions, write_atomic
+from estbench.store import ingest
+from estbench.study import study_from_mapping
+
+#: Spread of each synthetic estimator relative to the mean's, and its bias in SDs.
+ESTIMATORS = {"mean": (1.00, 0.0), "median": (1.25, 0.0), "trimmed_10": (1.03, 0.0),
+              "winsorized_10": (1.04, 0.01), "huber": (1.02, 0.02)}
+FUNCTIONS = {"mean": "location:mean", "median": "location:median", "trimmed_10": "location:trimmed_mean",
+             "winsorized_10": "location:winsorized_mean", "huber": "location:huber"}
+
+
+def study_mapping(reps: int) -> dict:
+    return {
+        "study": "report-scale",
+        "description": "Synthetic store for timing the report (invented numbers).",
+        "seed": 7, "replicates": reps, "block_size": reps // 10, "blocks_per_job": 10,
+        "sample_sizes": [10, 20, 50, 100, 500],
+        "dgms": {
+            "normal": {"distribution": "norm", "params": {"loc": 5.0, "scale": 1.0}},
+            "wide": {"distribution": "norm", "params": {"loc": 5.0, "scale": 3.0}},
+            "t5": {"distribution": "t", "params": {"df": 5, "loc": 5.0, "scale": 1.0}},
+            "logistic": {"distribution": "logistic", "params": {"loc": 5.0, "scale": 1.0}},
+        },
+        "estimators": {name: {"function": fn, "target": "mean"} for name, fn in FUNCTIONS.items()},
+        "reference": "mean",
+        "targets": {"bias": 0.002, "coverage": 0.001},
+        "report": {"asymptotic_efficiency": {"median": {"normal": 2 / np.pi, "wide": 2 / np.pi}}},
+    }
+
+
+def synthetic_shard(study, scenario, estimator: str, rng) -> pa.Table:
+    """One scenario x estimator, every seed block: normal errors, SE, t interval, p-value."""
+    reps, n = study.replicates_run, scenario.n
+    sd = scenario.spec["params"]["scale"] / np.sqrt(n) * ESTIMATORS[estimator][0]
+    truth = scenario.spec["params"]["loc"]
+    shared = rng.standard_normal(reps)             # the "same dataset" part, as for paired estimators
+    estimate = truth + sd * (ESTIMATORS[estimator][1] + 0.9 * shared + 0.436 * rng.standard_normal(reps))
+    se = sd * np.sqrt(rng.chisquare(n - 1, reps) / (n - 1))
+    crit = stats.t.ppf(0.975, n - 1)
+    status = np.where(rng.random(reps) < 1e-4, "error", "ok").astype(object)
+    failed = status == "error"
+    message = np.where(failed, "ValueError: synthetic failure", None).astype(object)
+    estimate[failed] = np.nan
+    return pa.table({
+        "scenario": pa.array([scenario.key] * reps, pa.string()),
+        "estimator": pa.array([estimator] * reps, pa.string()),
+        "block": np.arange(reps) // study.block_size, "rep": np.arange(reps),
+        "estimate": estimate, "se": se, "ci_low": estimate - crit * se, "ci_high": estimate + crit * se,
+        "p_value": 2 * stats.t.sf(np.abs((estimate - truth) / se), n - 1),
+        "status": pa.array(status, pa.string()), "message": pa.array(message, pa.string()),
+    }, schema=SHARD_SCHEMA)
+
+
+def build_store(folder: Path, reps: int) -> tuple[Path, int]:
+    raw = study_mapping(reps)
+    path = folder / "study.yaml"
+    path.write_text(yaml.safe_dump(raw, sort_keys=False))
+    study = study_from_mapping(raw, source=path)
+    rng = np.random.default_rng(20261201)
+    shards = []
+    for s in study.scenarios:
+        for e in study.estimators:
+            out = shard_path(study.name, s.key, e, 0, folder)
+            write_atomic(synthetic_shard(study, s, e, rng), out, {
+                "seed": str(study.seed), "scenario": s.key, "scenario_spawn_key": str(s.spawn_key),
+                "estimator": e, "function": study.estimators[e].function, "code_hash": "synthetic",
+                "first_block": 0, "n_blocks": study.n_blocks, "block_size": study.block_size,
+                "rows": study.replicates_run, "versions": versions(), "seconds": 0.0,
+                "created": time.strftime("%Y-%m-%dT%H:%M:%S%z")})
+            shards.append(out)
+    store = folder / "store.duckdb"
+    ingest(store, study, shards)
+    return store, len(study.scenarios) * len(study.estimators) * study.replicates_run
+
+
+def reuse(folder: Path, reps: int) -> tuple[Path, int] | None:
+    """A store this benchmark built before in *folder*, with its row count."""
+    store = folder / "store.duckdb"
+    if not store.exists():
+        return None
+    import duckdb
+    con = duckdb.connect(str(store), read_only=True)
+    try:
+        rows = con.execute("SELECT count(*) FROM estimates").fetchone()[0]
+        name = con.execute("SELECT name, replicates FROM study").fetchone()
+    finally:
+        con.close()
+    return (store, rows) if name == ("report-scale", reps) else None
+
+
+_CHILD = """
+import json, resource, sys, time
+import estbench.report
+
+def high_water_kib():
+    # VmHWM: this process's peak resident set. (ru_maxrss would also count
+    # the parent's memory inherited at fork, since Linux keeps it across exec.)
+    for line in open("/proc/self/status"):
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1])
+
+def cpu_seconds():
+    # this process and its finished children (the figure workers)
+    return sum(getattr(resource.getrusage(who), f) for who in (resource.RUSAGE_SELF, resource.RUSAGE_CHILDREN)
+               for f in ("ru_utime", "ru_stime"))
+
+before, cpu = high_water_kib(), cpu_seconds()
+start = time.perf_counter()
+estbench.report.render(sys.argv[1], sys.argv[2], sys.argv[3])
+seconds = time.perf_counter() - start
+print(json.dumps({"seconds": seconds, "cpu": cpu_seconds() - cpu, "rss_before_kib": before,
+                  "rss_peak_kib": high_water_kib()}))
+"""
+
+
+def time_render(store: Path, folder: Path) -> dict:
+    """Render in a fresh process (imports done before the clock starts)."""
+    proc = subprocess.run([sys.executable, "-c", _CHILD, str(store), str(folder / "report.html"),
+                           str(folder / "performance.csv")], capture_output=True, text=True, check=True)
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--reps", type=int, default=100_000, help="replicates per scenario")
+    parser.add_argument("--keep", type=Path, help="build in this folder and keep it (a store there is reused)")
+    args = parser.parse_args()
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = args.keep or Path(tmp)
+        folder.mkdir(parents=True, exist_ok=True)
+        start = time.perf_counter()
+        reused = reuse(folder, args.reps)
+        store, rows = reused or build_store(folder, args.reps)
+        built = "reused" if reused else f"{time.perf_counter() - start:.1f} s"
+        load_before = os.getloadavg()[0]
+        runs = [time_render(store, folder) for _ in range(2)]
+        html = (folder / "report.html").stat().st_size
+        as_numpy_mib = rows * 5 * 8 / 2**20   # estimate, se, ci_low, ci_high, p_value as float64
+        print(f"estimate rows               {rows:>12,}")
+        print(f"store built (synth+ingest)  {built:>12}   ({store.stat().st_size / 2**20:.0f} MiB)")
+        for i, r in enumerate(runs, 1):
+            peak, imported = r["rss_peak_kib"] / 1024, r["rss_before_kib"] / 1024
+            print(f"render, run {i}               {r['seconds']:>10.1f} s   ({r['cpu']:.1f} CPU-s)   "
+                  f"peak RSS {peak:.0f} MiB (after imports {imported:.0f} MiB)")
+        print(f"the estimates as numpy      {as_numpy_mib:>10.0f} MiB (never loaded)")
+        print(f"report.html                 {html / 2**20:>10.2f} MiB")
+        print(f"cores available             {len(os.sched_getaffinity(0)):>10}   "
+              f"(1-min load average {load_before:.1f} before the renders, {os.getloadavg()[0]:.1f} after)")
+
+
+if __name__ == "__main__":
+    main()
