@@ -204,7 +204,9 @@ def test_user_text_is_escaped_everywhere(tmp_path):
     escaped = "&lt;script&gt;alert(1)&lt;/script&gt;"
     for text in (f"Study {escaped}", f"DGM {escaped}", f"Estimator {escaped}", f"ValueError: {escaped}"):
         assert text in html, text
-    assert re.search(r"fragile</td>\s*<td>\d+ of 40", html), "failures are counted per scenario"
+    # failures per scenario x estimator, with the messages as the count's tooltip, and per estimator
+    assert len(re.findall(f'<td title="ValueError: {re.escape(escaped)} ×\\d+">\\d+ of 40 ', html)) == 2
+    assert re.search(r"<td class=\"text\">fragile</td><td class=\"numbers\">\d+</td>", html)
 
 
 def test_adding_an_estimator_changes_no_other_number(tmp_path):

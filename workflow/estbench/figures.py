@@ -364,8 +364,8 @@ def zip_svg(panels: Sequence[dict], styles: Mapping[str, Style], level: float, t
         span = float(np.percentile(ends, 99)) if ends.size and np.percentile(ends, 99) > 0 else 1.0
         ax.set_xlim(p["truth"] - 1.05 * span, p["truth"] + 1.05 * span)
         ax.set_ylim(0, 100)
-        ax.set_title(f"{p['estimator']}: coverage {p['coverage']:.3f} (MCSE {p['coverage_mcse']:.2g})",
-                     color=st.colour)
+        ax.set_title(f"{p['estimator']}\ncoverage {p['coverage']:.3f} (MCSE {p['coverage_mcse']:.2g})",
+                     color=st.colour, fontsize=9)
         ax.set_xlabel("interval (vertical line: true value)")
         ax.set_ylabel("centile of |z|")
     return to_svg(fig, label, uid)

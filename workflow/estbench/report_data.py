@@ -96,22 +96,28 @@ def replicate_counts(con) -> list[dict]:
         FROM estimates GROUP BY ALL""")
 
 
-def failure_messages(con, top: int = 3) -> list[dict]:
-    """The *top* most common messages of the failed replicates, per scenario x estimator.
+_FAILURE_GROUPS = {"scenario": ("scenario", "estimator"), "estimator": ("estimator",)}
+
+
+def failure_messages(con, top: int, per: str) -> list[dict]:
+    """The *top* most common messages of the failed replicates, per
+    scenario x estimator (*per* = ``"scenario"``) or per estimator over all
+    scenarios (*per* = ``"estimator"``).
 
     ``kinds`` counts the distinct messages; a replicate without a message is
     listed under its status.
     """
-    return fetch_dicts(con, """
-        WITH f AS (SELECT scenario, estimator, coalesce(message, '(' || status || ', no message)') AS message,
+    keys = ", ".join(_FAILURE_GROUPS[per])
+    return fetch_dicts(con, f"""
+        WITH f AS (SELECT {keys}, coalesce(message, '(' || status || ', no message)') AS message,
                           count(*) AS k
                    FROM estimates WHERE status <> 'ok' GROUP BY ALL),
-        ranked AS (SELECT *, row_number() OVER (PARTITION BY scenario, estimator ORDER BY k DESC, message) AS r,
-                          count(*) OVER (PARTITION BY scenario, estimator) AS kinds
+        ranked AS (SELECT *, row_number() OVER (PARTITION BY {keys} ORDER BY k DESC, message) AS r,
+                          count(*) OVER (PARTITION BY {keys}) AS kinds, sum(k) OVER (PARTITION BY {keys}) AS failed
                    FROM f)
-        SELECT scenario, estimator, any_value(kinds) AS kinds,
+        SELECT {keys}, any_value(kinds) AS kinds, any_value(failed) AS failed,
                list(struct_pack(message := message, count := k) ORDER BY r) AS messages
-        FROM ranked WHERE r <= $top GROUP BY scenario, estimator""", {"top": top})
+        FROM ranked WHERE r <= $top GROUP BY {keys}""", {"top": top})
 
 
 def provenance_summary(con) -> dict:

@@ -126,19 +126,43 @@ def precision(model: ReportModel, con, checks: list[dict]) -> dict:
     tested = [c for c in blocks if c["p_value"] is not None]
     alpha = tested[0]["limit"] if tested else None
     flagged = [{**c, "where": _where(c, fam_of)} for c in tested if not c["passed"]]
-    counts = {(c["scenario"], c["estimator"]): c for c in model.counts}
-    failures = []
-    for m in report_data.failure_messages(con, TOP_MESSAGES):
-        c = counts[(m["scenario"], m["estimator"])]
-        scen = next(s for s in model.scenarios if s["scenario"] == m["scenario"])
-        failures.append({"where": fam_of[m["scenario"]].title, "n": scen["n"], "estimator": m["estimator"],
-                         "failed": c["failed"], "rows": c["rows"], "share": c["failed"] / c["rows"],
-                         "messages": m["messages"], "more": m["kinds"] - len(m["messages"]),
-                         "order": (scen["position"], model.estimator_names().index(m["estimator"]))})
-    failures.sort(key=lambda f: f["order"])
+    failures = _failures(model, con)
     return {"targets": summary, "not_met": not_met, "blocks_tested": len(tested), "alpha": alpha,
             "expected_by_chance": None if alpha is None else alpha * len(tested), "flagged": flagged,
-            "failures": failures}
+            **failures}
+
+
+def _messages_text(messages, kinds: int) -> str:
+    text = "; ".join(f"{m['message']} ×{m['count']}" for m in messages)
+    return text + (f"; and {kinds - len(messages)} other message(s)" if kinds > len(messages) else "")
+
+
+def _failures(model: ReportModel, con) -> dict:
+    """Failed replicates as a scenario x estimator matrix (with each cell's
+    commonest messages as its tooltip) and each estimator's commonest messages."""
+    counts = {(c["scenario"], c["estimator"]): c for c in model.counts}
+    tips = {(m["scenario"], m["estimator"]): _messages_text(m["messages"], m["kinds"])
+            for m in report_data.failure_messages(con, TOP_MESSAGES, "scenario")}
+    names = model.estimator_names()
+    rows = []
+    for f in model.families:
+        for s in f.scenarios:
+            cells = {}
+            for est in names:
+                c = counts.get((s["scenario"], est))
+                if c and c["failed"]:
+                    cells[est] = {"failed": c["failed"], "rows": c["rows"],
+                                  "share": format(100 * c["failed"] / c["rows"], ".2g") + "%",
+                                  "tip": tips.get((s["scenario"], est), "")}
+            if cells:
+                rows.append({"where": f.title, "n": s["n"], "cells": cells})
+    by_estimator = [{**m, "more": m["kinds"] - len(m["messages"])}
+                    for m in report_data.failure_messages(con, TOP_MESSAGES, "estimator")]
+    by_estimator.sort(key=lambda m: names.index(m["estimator"]))
+    total = sum(c["rows"] for c in model.counts)
+    failed = sum(c["failed"] for c in model.counts)
+    return {"failure_rows": rows, "failure_estimators": [n for n in names if any(n in r["cells"] for r in rows)],
+            "failure_messages": by_estimator, "failed": failed, "replicates": total}
 
 
 # ------------------------------------------------------------------ performance tables
