@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import sys
 from concurrent.futures import ProcessPoolExecutor
 
 from . import figures
@@ -17,6 +18,12 @@ from . import figures
 #: Most worker processes used, and fewest figures worth a pool.
 MAX_WORKERS = 4
 MIN_FOR_POOL = 4
+
+
+def _cores() -> int:
+    if hasattr(os, "sched_getaffinity"):
+        return len(os.sched_getaffinity(0))
+    return os.cpu_count() or 1
 
 
 def _draw(job: tuple) -> str:
@@ -48,10 +55,11 @@ class FigureQueue:
         return len(self._jobs)
 
     def draw(self, workers: int | None = None) -> None:
-        """Draw every queued figure, in parallel when it pays."""
-        workers = workers or min(MAX_WORKERS, len(os.sched_getaffinity(0)))
+        """Draw every queued figure, in parallel when it pays (on Linux, where
+        forking a process that has loaded matplotlib is safe)."""
+        workers = workers or min(MAX_WORKERS, _cores())
         jobs = [job for _, job in self._jobs]
-        if workers > 1 and len(jobs) >= MIN_FOR_POOL:
+        if workers > 1 and len(jobs) >= MIN_FOR_POOL and sys.platform.startswith("linux"):
             with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("fork")) as pool:
                 svgs = list(pool.map(_draw, jobs))
         else:

@@ -4,6 +4,7 @@ performance tables (with paired tests of the leader) and the appendix."""
 from __future__ import annotations
 
 import json
+import math
 
 from . import report_data
 from .measures import MEASURES
@@ -67,7 +68,7 @@ def _truth_text(model: ReportModel, family: Family) -> list[str]:
 
 
 def _finite(x) -> bool:
-    return x is not None and x == x and abs(x) != float("inf")
+    return x is not None and math.isfinite(x)
 
 
 def glance(model: ReportModel, con) -> dict:
