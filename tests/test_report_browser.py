@@ -8,6 +8,7 @@ screenshot is a real image, and HTML in user text stays inert.
 """
 
 import base64
+import fcntl
 import json
 import os
 import select
@@ -45,8 +46,9 @@ class Chromium:
         self._answers, answers_write = os.pipe()
 
         def wire_pipes():            # in the child: the protocol wants fds 3 (in) and 4 (out)
-            os.dup2(commands_read, 3)
-            os.dup2(answers_write, 4)
+            high = [fcntl.fcntl(fd, fcntl.F_DUPFD, 10) for fd in (commands_read, answers_write)]
+            os.dup2(high[0], 3)      # (via fds >= 10, so neither end is overwritten on the way)
+            os.dup2(high[1], 4)
 
         self.process = subprocess.Popen(
             [executable, "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
