@@ -297,9 +297,9 @@ def intervals(model: ReportModel, con, queue: FigureQueue) -> dict:
                 f"line ({level:.0%}); more colour below it means under-coverage, and coloured lines "
                 f"leaning to one side of the true value mean bias. About {per} of the replicates per "
                 "estimator are drawn (every k-th rank, chosen in the store)."
-                + (f" {', '.join(no_se)} give{'s' if len(no_se) == 1 else ''} no SE: ranked by the distance "
-                   "to the truth over the interval's half-width on that side, which is ≤ 1 exactly when "
-                   "the interval covers." if no_se else ""),
+                + (f" Without an SE ({', '.join(no_se)}), intervals are ranked by the distance to the truth "
+                   "over the interval's half-width on that side, which is ≤ 1 exactly when the interval "
+                   "covers." if no_se else ""),
                 f"Zip plot, {title}",
                 f"Zip plot of interval coverage for {title}, one panel per estimator.",
                 panels=panels, styles=model.styles, level=level, title=title)
