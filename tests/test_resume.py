@@ -30,10 +30,13 @@ def _start(cwd: Path, path: Path) -> subprocess.Popen:
                             start_new_session=True)
 
 
-def _running(fragment: str) -> bool:
-    """Is a process whose command line contains *fragment* alive (read from /proc)?"""
+def _running(fragment: str, session: int | None = None) -> bool:
+    """Is a process of *session* (all sessions if None) whose command line contains
+    *fragment* alive? Read from /proc; other runs on the machine do not count."""
     for pid in filter(str.isdigit, os.listdir("/proc")):
         try:
+            if session is not None and os.getsid(int(pid)) != session:
+                continue
             if fragment in Path(f"/proc/{pid}/cmdline").read_bytes().replace(b"\0", b" ").decode():
                 return True
         except OSError:
@@ -73,9 +76,9 @@ def _shards(cwd):
 def test_sigkill_at_any_stage_then_rerun_gives_identical_results(tmp_path, uninterrupted, stage):
     path = _study(tmp_path)
     proc = _start(tmp_path, path)
-    ready = {"shards": lambda: 0 < len(_shards(tmp_path)) < 12 and _running("estbench.shard"),
-             "ingest": lambda: _running("ingest.py"),
-             "report": lambda: _running("estbench.report")}[stage]
+    ready = {"shards": lambda: 0 < len(_shards(tmp_path)) < 12 and _running("estbench.shard", proc.pid),
+             "ingest": lambda: _running("ingest.py", proc.pid),
+             "report": lambda: _running("estbench.report", proc.pid)}[stage]
     _kill_when(proc, ready)
     rerun = run_cli("run", path, "--cores", "2", cwd=tmp_path, check=True)
     assert "cleared Snakemake's locks left by a run that was killed" in rerun.stderr
@@ -89,7 +92,7 @@ def test_second_concurrent_run_is_refused(tmp_path):
     first = _start(tmp_path, path)
     try:
         _kill_when_started = time.monotonic()
-        while not _running("estbench.shard"):
+        while not _running("estbench.shard", first.pid):
             assert time.monotonic() - _kill_when_started < 60 and first.poll() is None
             time.sleep(0.05)
         second = run_cli("run", path, "--cores", "1", cwd=tmp_path)

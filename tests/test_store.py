@@ -89,11 +89,20 @@ def test_failed_ingest_leaves_the_previous_store(tmp_path):
 def test_bit_flip_inside_a_shard_is_caught_by_page_checksums(tmp_path):
     study, paths = _setup(tmp_path)
     data = bytearray(paths[2].read_bytes())
-    data[len(data) // 3] ^= 0x40  # one flipped bit in a data page; the footer stays readable
+    data[40] ^= 0x40  # one flipped bit in the first data page; the footer stays readable
     paths[2].write_bytes(bytes(data))
-    with pytest.raises(UserError, match="will be recomputed"):
+    with pytest.raises(UserError, match="CRC checksum verification failed.*will be recomputed"):
         ingest(tmp_path / "store.duckdb", study, paths)
     assert not paths[2].exists()
+
+
+def test_a_renamed_column_in_the_footer_is_caught(tmp_path):
+    study, paths = _setup(tmp_path)
+    data = paths[3].read_bytes()
+    at = data.index(b"estimate")  # the column name in the footer's Parquet schema
+    paths[3].write_bytes(data[:at] + b"estimatX" + data[at + 8:])
+    with pytest.raises(UserError, match="has columns .* expected .*will be recomputed"):
+        ingest(tmp_path / "store.duckdb", study, paths)
 
 
 def test_performance_rows_match_the_estimates(tmp_path):

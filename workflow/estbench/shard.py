@@ -75,6 +75,10 @@ def verify_shard(path: Path | str, full: bool = True) -> dict:
             handle.read()
     except Exception as exc:
         raise ShardProblem(f"unreadable ({type(exc).__name__}: {str(exc).splitlines()[0][:160]})") from None
+    # Readers may take names from the Parquet schema or from the stored Arrow schema: check both.
+    columns = handle.schema_arrow.remove_metadata()
+    if not columns.equals(SHARD_SCHEMA) or handle.schema.names != SHARD_SCHEMA.names:
+        raise ShardProblem(f"has columns {handle.schema.names}, expected {SHARD_SCHEMA.names}")
     expected = meta["n_blocks"] * meta["block_size"]
     if rows != expected or meta["rows"] != expected:
         raise ShardProblem(f"holds {rows} rows, expected {expected}")

@@ -8,5 +8,6 @@ rule report:
         csv=PERFORMANCE_CSV,
     log:
         f"{RESULTS}/logs/report.log",
+    threads: 2  # figures are drawn in parallel
     shell:
         "{PYTHON} -m estbench.report --store {input.store:q} --html {output.html:q} --csv {output.csv:q} 2> {log:q}"
