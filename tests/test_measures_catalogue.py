@@ -370,3 +370,34 @@ def test_bad_relations_raise_value_error():
         cramer_rao_bound(0.0, 10)
     with pytest.raises(ValueError, match="`n`"):
         cramer_rao_bound(1.0, 0)
+
+
+def test_one_pass_gives_the_same_performance_and_checks():
+    # performance_and_checks (used by ingest) must equal the two separate functions.
+    import duckdb
+    from estbench.measures import compute_checks, compute_performance, performance_and_checks
+    rng = np.random.default_rng(5)
+    reps = 600
+    est = rng.normal(1.0, 0.3, size=(2, reps))
+    table = pa.table({
+        "scenario": ["s"] * (2 * reps), "estimator": ["a"] * reps + ["b"] * reps,
+        "block": np.tile(np.arange(reps) // 50, 2), "rep": np.tile(np.arange(reps), 2),
+        "estimate": est.ravel(), "se": np.full(2 * reps, 0.3),
+        "ci_low": est.ravel() - 0.59, "ci_high": est.ravel() + 0.59,
+        "p_value": pa.nulls(2 * reps, pa.float64()), "status": ["ok"] * (2 * reps)})
+    truth = pa.table({"scenario": ["s", "s"], "estimator": ["a", "b"], "truth": [1.0, 1.0]})
+    con = duckdb.connect()
+    con.register("e", table)
+    con.register("t", truth)
+    targets = {"bias": 0.01, "coverage": 0.02}
+    perf, checks = performance_and_checks(con, "e", "t", targets, reference="a")
+    for one_pass, separate in [(perf, compute_performance(con, "e", "t", reference="a")),
+                               (checks, compute_checks(con, "e", "t", targets, reference="a"))]:
+        assert one_pass.schema == separate.schema and one_pass.num_rows == separate.num_rows
+        for name in one_pass.column_names:
+            a, b = one_pass[name].to_pylist(), separate[name].to_pylist()
+            if one_pass.schema.field(name).type == pa.float64():  # DuckDB may sum in another order
+                np.testing.assert_allclose(np.array(a, float), np.array(b, float), rtol=1e-12)
+            else:
+                assert a == b, name
+    assert checks.num_rows == 2 * 2 + 2  # two targets per estimator, one block test each

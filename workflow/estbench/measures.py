@@ -845,7 +845,27 @@ def compute_checks(con: duckdb.DuckDBPyConnection, estimates: str = "estimates",
     targets = _check_targets(targets)
     alpha = _check_level(heterogeneity_alpha, "heterogeneity_alpha")
     agg = _aggregate(con, estimates, truth, reference=reference, level=level, crb=crb)
-    plan = _plan(_long_table(agg), targets)
+    return _checks(agg, _long_table(agg), targets, alpha)
+
+
+def performance_and_checks(con: duckdb.DuckDBPyConnection, estimates: str = "estimates",
+                           truth: str = "truth", targets: Mapping[str, float] | None = None, *,
+                           reference: str | None = None, level: float = 0.95, crb=None,
+                           heterogeneity_alpha: float = 0.001) -> tuple[pa.Table, pa.Table]:
+    """``compute_performance`` and ``compute_checks`` from one pass over the estimates.
+
+    Parameters and returns as in those two functions; this is what ingest uses.
+    """
+    targets = _check_targets(targets)
+    alpha = _check_level(heterogeneity_alpha, "heterogeneity_alpha")
+    agg = _aggregate(con, estimates, truth, reference=reference, level=level, crb=crb)
+    performance = _long_table(agg)
+    return performance, _checks(agg, performance, targets, alpha)
+
+
+def _checks(agg, performance: pa.Table, targets: dict, alpha: float) -> pa.Table:
+    """The checks table from the aggregates and the performance table built from them."""
+    plan = _plan(performance, targets)
     mcse = _numbers(plan["mcse"])
     target_rows = pa.table({
         "scenario": plan["scenario"], "estimator": plan["estimator"],

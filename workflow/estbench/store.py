@@ -20,7 +20,7 @@ import pyarrow as pa
 from . import plugins
 from .dgms import build_dgm
 from .errors import UserError
-from .measures import compute_checks, compute_performance
+from .measures import performance_and_checks
 from .scenarios import canonical_json
 from .shard import SHARD_SCHEMA, ShardProblem, verify_shard
 from .study import Study
@@ -143,9 +143,9 @@ def measure_options(study: Study) -> dict:
 
 def _write_derived(con, study: Study) -> None:
     """Recompute the performance and checks tables from the estimates."""
-    options = measure_options(study)
-    tables = {"performance": compute_performance(con, "estimates", "truth", **options),
-              "checks": compute_checks(con, "estimates", "truth", study.targets, **options)}
+    performance, checks = performance_and_checks(con, "estimates", "truth", study.targets,
+                                                 **measure_options(study))
+    tables = {"performance": performance, "checks": checks}
     for name, table in tables.items():
         con.register("derived_in", table)
         con.execute(f"CREATE OR REPLACE TABLE {name} AS SELECT * FROM derived_in")
