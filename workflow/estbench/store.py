@@ -60,8 +60,6 @@ CREATE TABLE IF NOT EXISTS estimates (
     scenario VARCHAR, estimator VARCHAR, block BIGINT, rep BIGINT, estimate DOUBLE,
     se DOUBLE, ci_low DOUBLE, ci_high DOUBLE, p_value DOUBLE, status VARCHAR, message VARCHAR);
 """
-#: Derived tables, rebuilt from the estimates by every ingest.
-DERIVED = ("performance", "checks")
 
 
 def sha256_file(path: Path) -> str:
