@@ -10,6 +10,9 @@ from pathlib import Path
 import pyarrow.parquet as pq
 import pytest
 
+from estbench import plugins
+from estbench.shard import read_metadata
+
 from conftest import run_cli, tiny_study, write_study
 
 pytestmark = pytest.mark.snakemake
@@ -127,8 +130,8 @@ def test_editing_one_estimator_module_reruns_only_its_shards(tmp_path):
     changed = {p.parent.name for p in _shards(tmp_path) if p.stat().st_mtime_ns != before[p]}
     assert changed == {"slow"}
     assert sum(p.parent.name == "slow" and p.stat().st_mtime_ns != before[p] for p in _shards(tmp_path)) == 6
-    meta = pq.read_schema(_shards(tmp_path)[0]).metadata
-    assert meta is not None
+    assert {read_metadata(p)["code_hash"] for p in _shards(tmp_path) if p.parent.name == "slow"} \
+        == {plugins.code_hash([tmp_path / "slow_bits.py"])}
 
 
 def test_more_replicates_only_adds_seed_blocks(tmp_path):
@@ -140,10 +143,8 @@ def test_more_replicates_only_adds_seed_blocks(tmp_path):
     for p, table in first.items():
         grown = pq.read_table(p)
         assert grown.slice(0, table.num_rows).column("estimate").equals(table.column("estimate"))
-        meta = grown.schema.metadata
         if p.name == "4.parquet":
-            import json
-            info = json.loads(meta[b"estbench"])
+            info = read_metadata(p)
             assert info["reused_blocks"] == 1 and info["n_blocks"] == 2
     assert len(_shards(tmp_path)) == 2 * 3 * 4
     counts = run_cli("query", "SELECT count(*) FROM estimates", "--study", path, cwd=tmp_path, check=True)

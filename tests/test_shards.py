@@ -162,3 +162,96 @@ def test_per_replicate_time_limit_and_structured_data():
     assert result.status.tolist() == ["ok", "error", "ok", "error"]
     assert result.message[1] == "TimeLimitExceeded: replicate took longer than 0.2 s"
     np.testing.assert_array_equal(result.columns["estimate"][[0, 2]], [2.0, 2.0])
+
+
+def _job_files(study, workdir, first_block=0):
+    """Run the job of scenario 0 at *first_block* through the engine, as the workflow does."""
+    from estbench.paths import results_dir
+    from estbench.shard import run_job
+    job = jobs.job_spec(study, study.scenarios[0].key, first_block)
+    outputs = jobs.shards_of_job(results_dir(study.name, workdir), job)
+    return run_job(job, study.search_dirs, outputs), outputs
+
+
+def _fingerprint(path):
+    return path.stat().st_mtime_ns, path.read_bytes()
+
+
+def test_a_job_writes_one_shard_per_estimator_from_one_draw(tmp_path):
+    study = _study(tmp_path)
+    record, outputs = _job_files(study, tmp_path)
+    assert set(outputs) == {"mean", "median"}
+    assert {s["action"] for s in record["shards"].values()} == {"computed"}
+    s = study.scenarios[0]
+    for name, path in outputs.items():  # the same rows as the shard computed on its own
+        alone = compute_shard(jobs.shard_spec(study, s.key, name, 0), study.search_dirs)
+        assert pq.read_table(path).equals(alone)
+        assert read_metadata(path)["rows"] == 30
+
+
+def test_adding_an_estimator_computes_only_its_shard(tmp_path):
+    study = _study(tmp_path)
+    _, outputs = _job_files(study, tmp_path)
+    before = {name: _fingerprint(path) for name, path in outputs.items()}
+    grown = tiny_study()
+    grown["estimators"]["trim"] = {"function": "location:trimmed_mean", "target": "mean",
+                                   "args": {"proportion": 0.2}}
+    record, outputs = _job_files(study_from_mapping(grown, source=tmp_path / "study.yaml"), tmp_path)
+    actions = {name: (s["action"], s["reason"]) for name, s in record["shards"].items()}
+    assert actions == {"mean": ("kept", "up to date"), "median": ("kept", "up to date"),
+                       "trim": ("computed", "missing")}
+    assert {name: _fingerprint(outputs[name]) for name in before} == before
+
+
+def test_more_replicates_keep_the_blocks_a_shard_has(tmp_path):
+    study = _study(tmp_path, replicates=50, blocks_per_job=6)  # 5 blocks, one job
+    _, outputs = _job_files(study, tmp_path)
+    grown = _study(tmp_path, replicates=60, blocks_per_job=6)  # the job now has 6 blocks
+    record, outputs = _job_files(grown, tmp_path)
+    assert record["shards"]["mean"]["reason"] == "more blocks"
+    assert record["shards"]["mean"]["reused_blocks"] == 5
+    s = grown.scenarios[0]
+    fresh = compute_shard(jobs.shard_spec(grown, s.key, "mean", 0), grown.search_dirs)
+    assert pq.read_table(outputs["mean"]).equals(fresh)  # identical to computing all 6 afresh
+
+
+def test_shard_state_names_why_a_shard_is_recomputed(tmp_path):
+    from estbench.shard import shard_state
+    study = _study(tmp_path)
+    _, outputs = _job_files(study, tmp_path)
+    spec = jobs.shard_spec(study, study.scenarios[0].key, "mean", 0)
+    from estbench import plugins
+    code = plugins.code_hash(plugins.code_files("location:mean", study.search_dirs))
+    assert shard_state(outputs["mean"], spec, code).current
+    assert shard_state(outputs["mean"], spec, "0" * 16).reason == "estimator code changed"
+    other = _study(tmp_path, level=0.9)  # location:mean takes the level: its numbers change
+    other_spec = jobs.shard_spec(other, other.scenarios[0].key, "mean", 0)
+    assert shard_state(outputs["mean"], other_spec, code).reason == "settings changed"
+    assert shard_state(tmp_path / "none.parquet", spec, code).reason == "missing"
+    outputs["mean"].write_bytes(outputs["mean"].read_bytes()[:-40])
+    assert shard_state(outputs["mean"], spec, code).reason.startswith("damaged: unreadable")
+
+
+def test_shards_stream_in_row_groups(tmp_path):
+    from estbench.shard import ROW_GROUP_ROWS
+    study = _study(tmp_path, replicates=150_000, block_size=10_000, blocks_per_job=15,
+                   sample_sizes=[2])
+    _, outputs = _job_files(study, tmp_path)
+    handle = pq.ParquetFile(outputs["mean"])
+    assert handle.metadata.num_rows == 150_000
+    # Written a row group at a time: the job never held the whole shard at once.
+    assert handle.num_row_groups == -(-150_000 // ROW_GROUP_ROWS) == 3
+
+
+def test_auto_job_size_follows_the_data_drawn_not_the_estimators(tmp_path):
+    from estbench.study import AUTO_VALUES_PER_JOB
+    study = _study(tmp_path, blocks_per_job="auto", replicates=10**6, block_size=1000,
+                   sample_sizes=[10, 1000])
+    small, large = study.scenarios[0].key, study.scenarios[1].key
+    assert study.job_blocks(large) == AUTO_VALUES_PER_JOB // (1000 * 1000) == 50
+    assert study.job_blocks(small) == AUTO_VALUES_PER_JOB // (1000 * 10) == 5000
+    assert study.job_first_blocks(large) == list(range(0, 1000, 50))
+    assert study.job_first_blocks(small) == [0]  # 1000 blocks, fewer than one job's worth
+    more = _study(tmp_path, blocks_per_job="auto", replicates=2 * 10**6, block_size=1000,
+                  sample_sizes=[10, 1000], estimators={"sd": {"function": "scale:sd", "target": "sd"}})
+    assert more.job_first_blocks(large)[:20] == study.job_first_blocks(large)

@@ -48,6 +48,8 @@ CASES = {
     "YAML null as an argument name": (
         _bad(estimators={"mean": {"function": "location:mean", "target": "mean", "args": {None: 1}}}),
         "`estimators.mean.args`: key None must be a Python identifier"),
+    "zero blocks per job": (_bad(blocks_per_job=0),
+                            "`blocks_per_job`: must be a positive integer or 'auto', got 0"),
     "unknown target measure": (_bad(targets={"bias": 0.1, "speed": 1}),
                                "`targets`: key 'speed' must be a measure name: bias, relative_bias"),
 }
@@ -108,7 +110,7 @@ def test_missing_study_file_and_missing_store(tmp_path):
 def test_check_summarises_a_valid_study(tmp_path):
     proc = run_cli("check", write_study(tmp_path, tiny_study()), cwd=tmp_path, check=True)
     assert "2 scenario(s), 2 estimator(s), 60 replicates per scenario (6 seed block(s) of 10), " \
-           "8 shard job(s)" in proc.stdout
+           "4 simulation job(s), 8 shard(s)" in proc.stdout
 
 
 def test_report_options_must_name_what_the_study_has(tmp_path):

@@ -47,7 +47,7 @@ def test_run_produces_store_csv_and_report(tmp_path):
     assert 'id="precision"' in html and "Between-block heterogeneity" in html
     assert "http://" not in html and "https://" not in html
     status = run_cli("status", path, cwd=tmp_path, check=True).stdout
-    assert "8 of 8 shards done" in status and "mean: 120 replicates in 2 scenario(s), 0 failed" in status
+    assert "8 of 8 shards up to date; the next run computes 0 shard(s) in 0 job(s)" in status and "mean: 120 replicates in 2 scenario(s), 0 failed" in status
     # report re-renders from the store alone
     (out / "report.html").unlink()
     run_cli("report", path, cwd=tmp_path, check=True)
@@ -81,6 +81,10 @@ def test_growing_the_study_keeps_existing_shards(tmp_path):
     grown["estimators"]["trim"] = {"function": "location:trimmed_mean", "target": "mean",
                                    "args": {"proportion": 0.2}}
     write_study(tmp_path, grown)
+    plan = run_cli("status", path, cwd=tmp_path, check=True).stdout
+    # New: trim in the 2 old scenarios x 2 jobs, every estimator in the n=50 scenario's 2 jobs.
+    assert "8 of 18 shards up to date; the next run computes 10 shard(s) in 6 job(s)" in plan
+    assert "  trim: 6 shard(s), 180 replicates: missing" in plan
     run_cli("run", path, "--cores", "2", cwd=tmp_path, check=True)
     after = sorted((tmp_path / "results/tiny/shards").rglob("*.parquet"))
     assert len(after) == 3 * 3 * 2  # scenarios x estimators x shards per pair
@@ -93,8 +97,8 @@ def test_growing_the_study_keeps_existing_shards(tmp_path):
 
 def test_interrupted_before_ingest_loses_nothing(tmp_path):
     path = write_study(tmp_path, tiny_study())
-    # Stop after the shard jobs, as a kill between shard write and ingest would.
-    run_cli("run", path, "--cores", "2", "--", "--until", "shard", cwd=tmp_path, check=True)
+    # Stop after the simulation jobs, as a kill between shard write and ingest would.
+    run_cli("run", path, "--cores", "2", "--", "--until", "simulate", cwd=tmp_path, check=True)
     assert not (tmp_path / "results/tiny/store.duckdb").exists()
     shards = sorted((tmp_path / "results/tiny/shards").rglob("*.parquet"))
     mtimes = [p.stat().st_mtime_ns for p in shards]

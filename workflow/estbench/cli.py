@@ -30,10 +30,12 @@ def _load(path: Path):
 
 def cmd_check(args) -> int:
     study = _load(args.study)
-    n_jobs = len(study.scenarios) * len(study.estimators) * len(study.job_first_blocks())
+    from .jobs import job_keys
+    n_jobs = len(job_keys(study))
     print(f"study {study.name!r} is valid: {len(study.dgms)} DGM(s), {len(study.scenarios)} scenario(s), "
           f"{len(study.estimators)} estimator(s), {study.replicates_run} replicates per scenario "
-          f"({study.n_blocks} seed block(s) of {study.block_size}), {n_jobs} shard job(s)")
+          f"({study.n_blocks} seed block(s) of {study.block_size}), {n_jobs} simulation job(s), "
+          f"{n_jobs * len(study.estimators)} shard(s)")
     return 0
 
 
@@ -72,12 +74,18 @@ def cmd_run(args) -> int:
 
 
 def cmd_status(args) -> int:
-    from . import jobs
+    from collections import Counter
+
+    from .pending import pending_jobs, shard_plans
     from .precision import with_allocation
     study = with_allocation(_load(args.study))
-    shards = jobs.shard_paths(study)
-    done = sum(p.exists() for p in shards)
-    print(f"study {study.name!r}: {done} of {len(shards)} shards done, {len(shards) - done} to do")
+    plans = shard_plans(study)
+    todo = [p for p in plans if p.pending]
+    print(f"study {study.name!r}: {len(plans) - len(todo)} of {len(plans)} shards up to date; "
+          f"the next run computes {len(todo)} shard(s) in {len(pending_jobs(study))} job(s)")
+    for (name, reason), count in sorted(Counter((p.estimator, p.reason) for p in todo).items()):
+        reps = sum(p.replicates for p in todo if p.estimator == name and p.reason == reason)
+        print(f"  {name}: {count} shard(s), {reps:,} replicates: {reason}")
     store = store_path(study.name)
     if not store.exists():
         print("store: not created yet")
@@ -220,8 +228,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     _verb(sub, "check", cmd_check, "validate a study file and say what it would run",
           "Validate the study file (schema and meaning) without running anything.")
-    _verb(sub, "status", cmd_status, "shards done and to do, replicates in the store",
-          "Count finished shards and the replicates already in the store.")
+    _verb(sub, "status", cmd_status, "what the next run computes and why, replicates in the store",
+          "Compare every shard with the spec and estimator code it must have: say which shards the "
+          "next run computes and why (missing, estimator code changed, settings changed, more "
+          "blocks, damaged), and count the replicates already in the store.")
     p = _verb(sub, "plan", cmd_plan, "replicates needed to meet the MCSE targets",
               "For every scenario x estimator x targeted measure: the MCSE so far, the target and "
               "the replicates needed (n_sim = Var/MCSE^2; for a share such as coverage "

@@ -1,10 +1,14 @@
-"""What the workflow runs: shard paths and each shard job's own spec.
+"""What the workflow runs: simulation jobs, their shards, and each job's own spec.
 
-Used by ``workflow/rules/common.smk`` and by ``estbench status``. A job's
-spec holds only what decides its numbers (seed, block size, its scenario, its
-estimator's function and args, its blocks, the level if the estimator takes
-one). Snakemake reruns a job when its spec changes, so editing one estimator
-or adding another never reruns unrelated shards.
+A job is one scenario x a range of seed blocks, for every estimator of the
+study: it draws each block once and writes one shard per estimator. Its spec
+holds only what decides its numbers (seed, block size, its scenario and
+blocks, each estimator's function and args, the level for those that take
+one). Snakemake reruns a job when its spec or an estimator's code changes;
+the job then recomputes only the shards whose own spec or code changed, and
+leaves every other shard untouched (see ``shard.run_job``).
+
+Used by ``workflow/rules/common.smk``, by the runner and by ``estbench status``.
 """
 
 from __future__ import annotations
@@ -12,27 +16,42 @@ from __future__ import annotations
 import json
 from functools import lru_cache
 from pathlib import Path
+from typing import TYPE_CHECKING, Iterable, Mapping
 
 from . import plugins
-from .paths import shard_path
-from .study import Study
+from .paths import job_record_path, shard_file, shard_path
+
+if TYPE_CHECKING:
+    from .study import Study
+
+#: Keys a job shares with each of its per-estimator shard specs.
+COMMON_KEYS = ("seed", "block_size", "first_block", "n_blocks", "scenario")
+
+
+def job_keys(study: Study) -> list[tuple[str, int]]:
+    """(scenario key, first block) of every job, scenario by scenario."""
+    return [(s.key, b) for s in study.scenarios for b in study.job_first_blocks(s.key)]
+
+
+def job_n_blocks(study: Study, scenario: str, first_block: int) -> int:
+    """Seed blocks of the job starting at *first_block* (the last one may be short)."""
+    return min(study.job_blocks(scenario), study.blocks_of(scenario) - first_block)
+
+
+def job_record_paths(study: Study, workdir: Path | str = ".") -> list[Path]:
+    """The record every job writes when all its shards are in place."""
+    return [job_record_path(study.name, s, b, workdir) for s, b in job_keys(study)]
+
+
+def shard_rows(study: Study, workdir: Path | str = ".") -> list[tuple[Path, int]]:
+    """Every shard the study needs with the number of replicates it holds."""
+    return [(shard_path(study.name, s, e, b, workdir), job_n_blocks(study, s, b) * study.block_size)
+            for s, b in job_keys(study) for e in study.estimators]
 
 
 def shard_paths(study: Study, workdir: Path | str = ".") -> list[Path]:
     """Every shard the study needs, scenario by scenario."""
     return [path for path, _ in shard_rows(study, workdir)]
-
-
-def shard_rows(study: Study, workdir: Path | str = ".") -> list[tuple[Path, int]]:
-    """Every shard with the number of replicates it holds."""
-    out = []
-    for s in study.scenarios:
-        blocks = study.blocks_of(s.key)
-        for e in study.estimators:
-            for b in study.job_first_blocks(s.key):
-                out.append((shard_path(study.name, s.key, e, b, workdir),
-                            min(study.blocks_per_job, blocks - b) * study.block_size))
-    return out
 
 
 def scenario_by_key(study: Study, key: str):
@@ -42,22 +61,52 @@ def scenario_by_key(study: Study, key: str):
     raise KeyError(f"study {study.name!r} has no scenario {key!r}")
 
 
-def shard_spec(study: Study, scenario: str, estimator: str, first_block: int) -> dict:
-    """The JSON-able spec of one shard job."""
+def job_spec(study: Study, scenario: str, first_block: int) -> dict:
+    """The JSON-able spec of one job: its scenario and blocks, and every estimator."""
     s = scenario_by_key(study, scenario)
-    e = study.estimators[estimator]
-    fn = plugins.resolve(e.function, study.search_dirs)
-    spec = {
+    estimators = []
+    for e in study.estimators.values():
+        entry = {"estimator": {"name": e.name, "function": e.function, "args": dict(e.args)}}
+        if plugins.accepts(plugins.resolve(e.function, study.search_dirs), "level"):
+            entry["level"] = study.level
+        estimators.append(entry)
+    return {
         "seed": study.seed,
         "block_size": study.block_size,
         "first_block": first_block,
-        "n_blocks": min(study.blocks_per_job, study.blocks_of(scenario) - first_block),
+        "n_blocks": job_n_blocks(study, scenario, first_block),
         "scenario": {"key": s.key, "spawn_key": s.spawn_key, "dgm": s.spec, "n": s.n},
-        "estimator": {"name": e.name, "function": e.function, "args": dict(e.args)},
+        "estimators": estimators,
     }
-    if plugins.accepts(fn, "level"):
-        spec["level"] = study.level
-    return spec
+
+
+def job_spec_json(study: Study, scenario: str, first_block: int) -> str:
+    return json.dumps(job_spec(study, scenario, first_block), sort_keys=True)
+
+
+def estimator_specs(job: Mapping) -> list[dict]:
+    """The spec of each shard of a job: the job's common part plus one estimator.
+
+    A shard's spec decides its numbers, so its hash tells whether an existing
+    shard still stands.
+    """
+    common = {k: job[k] for k in COMMON_KEYS}
+    return [{**common, **entry} for entry in job["estimators"]]
+
+
+def job_of(specs: Iterable[Mapping]) -> dict:
+    """The job computing the given shard specs (which must share scenario and blocks)."""
+    specs = list(specs)
+    common = {k: specs[0][k] for k in COMMON_KEYS}
+    if any({k: s[k] for k in COMMON_KEYS} != common for s in specs):
+        raise ValueError("shard specs of one job must share seed, block size, blocks and scenario")
+    return {**common, "estimators": [{k: v for k, v in s.items() if k not in COMMON_KEYS} for s in specs]}
+
+
+def shard_spec(study: Study, scenario: str, estimator: str, first_block: int) -> dict:
+    """The spec of one shard: one estimator's part of its job."""
+    names = list(study.estimators)
+    return estimator_specs(job_spec(study, scenario, first_block))[names.index(estimator)]
 
 
 def shard_spec_json(study: Study, scenario: str, estimator: str, first_block: int) -> str:
@@ -69,6 +118,14 @@ def _code_files(function: str, dirs: tuple) -> tuple[str, ...]:
     return tuple(str(p) for p in plugins.code_files(function, dirs))
 
 
-def estimator_sources(study: Study, estimator: str) -> list[str]:
-    """Source files of an estimator (its module and same-folder helpers): inputs of its shards."""
-    return list(_code_files(study.estimators[estimator].function, tuple(study.search_dirs)))
+def estimator_sources(study: Study) -> list[str]:
+    """Source files of every estimator (modules and same-folder helpers): inputs of each job."""
+    files = {f for e in study.estimators.values() for f in _code_files(e.function, tuple(study.search_dirs))}
+    return sorted(files)
+
+
+def shards_of_job(results: Path | str, job: Mapping) -> dict[str, Path]:
+    """Estimator name -> shard path of every shard a job writes under *results*."""
+    key, first = job["scenario"]["key"], job["first_block"]
+    return {e["estimator"]["name"]: shard_file(results, key, e["estimator"]["name"], first)
+            for e in job["estimators"]}

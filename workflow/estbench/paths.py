@@ -24,8 +24,26 @@ def store_path(study_name: str, workdir: Path | str = ".") -> Path:
     return results_dir(study_name, workdir) / "store.duckdb"
 
 
+def shard_file(results: Path | str, scenario: str, estimator: str, first_block: int) -> Path:
+    """Parquet shard of one scenario x estimator x range of seed blocks, under *results*."""
+    return Path(results) / "shards" / scenario / estimator / f"{first_block}.parquet"
+
+
+def job_record_file(results: Path | str, scenario: str, first_block: int) -> Path:
+    """Record of one simulation job (a scenario x range of seed blocks), under *results*.
+
+    Written after every shard of the job is in place: it is the job's output
+    as Snakemake sees it.
+    """
+    return Path(results) / "jobs" / scenario / f"{first_block}.json"
+
+
 def shard_path(study_name: str, scenario: str, estimator: str, first_block: int,
                workdir: Path | str = ".") -> Path:
     """Parquet shard of one scenario x estimator x range of seed blocks."""
-    return (results_dir(study_name, workdir) / "shards" / scenario / estimator
-            / f"{first_block}.parquet")
+    return shard_file(results_dir(study_name, workdir), scenario, estimator, first_block)
+
+
+def job_record_path(study_name: str, scenario: str, first_block: int, workdir: Path | str = ".") -> Path:
+    """Record of one simulation job of a study."""
+    return job_record_file(results_dir(study_name, workdir), scenario, first_block)

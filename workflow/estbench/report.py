@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import csv
 import os
+import sys
+import time
 from pathlib import Path
 
 import jinja2
@@ -140,10 +142,11 @@ def main(argv=None) -> int:
     parser.add_argument("--html", required=True)
     parser.add_argument("--csv", required=True)
     args = parser.parse_args(argv)
+    start = time.perf_counter()
     render(args.store, args.html, args.csv)
+    print(f"{args.html}: written in {time.perf_counter() - start:.2f} s", file=sys.stderr)
     return 0
 
 
 if __name__ == "__main__":
-    import sys
     sys.exit(main())

@@ -9,7 +9,7 @@
   folder: every run holds a shared ``flock`` on ``.snakemake/estbench.gate``,
   and clearing needs it exclusively.
 - Before Snakemake starts, existing shards get a quick check (footer, metadata,
-  row count); a bad one is removed so it is recomputed. Ingest checks every
+  row count); a bad one is removed, with its job's record, so it is recomputed. Ingest checks every
   page's checksum; if it removes a corrupt shard, the run goes round once more.
 """
 
@@ -27,7 +27,8 @@ from pathlib import Path
 
 from . import jobs
 from .errors import UserError
-from .paths import SNAKEFILE, results_dir
+from .paths import SNAKEFILE, job_record_path, results_dir, shard_path
+from .pending import pending_jobs
 from .shard import ShardProblem, verify_shard
 from .store import RECOMPUTE_MARKER
 from .study import Study
@@ -87,54 +88,63 @@ def clear_stale_snakemake_locks(gate, snakefile_args: list[str], workdir: Path) 
 
 
 def remove_bad_shards(study: Study, workdir: Path) -> list[str]:
-    """Quick-check every existing shard; delete the bad ones so they are recomputed."""
+    """Quick-check every existing shard; delete a bad one, and the record of its job,
+    so it is recomputed. A job whose shard went missing loses its record too."""
     removed = []
-    for path in jobs.shard_paths(study, workdir):
-        if not path.exists():
-            continue
-        try:
-            verify_shard(path, full=False)
-        except ShardProblem as exc:
-            path.unlink(missing_ok=True)
-            removed.append(f"{path.relative_to(workdir)} {exc}")
+    for scenario, first in jobs.job_keys(study):
+        record = job_record_path(study.name, scenario, first, workdir)
+        for name in study.estimators:
+            path = shard_path(study.name, scenario, name, first, workdir)
+            if not path.exists():
+                record.unlink(missing_ok=True)
+                continue
+            try:
+                verify_shard(path, full=False)
+            except ShardProblem as exc:
+                path.unlink(missing_ok=True)
+                record.unlink(missing_ok=True)
+                removed.append(f"{path.relative_to(workdir)} {exc}")
     return removed
 
 
 @dataclass
 class Progress:
-    """Counts shards and replicates on disk while Snakemake runs, and prints one status line."""
+    """Counts the jobs this run has finished (their records) and prints one status line."""
 
     study: Study
     workdir: Path
     stream: object = sys.stderr
 
     def __post_init__(self):
-        self.expected = {p: rows for p, rows in jobs.shard_rows(self.study, self.workdir)}
-        self.total_rows = sum(self.expected.values())
-        self.start = time.monotonic()
-        self.done_at_start = self._done()[0]
+        self.todo = {job_record_path(self.study.name, s, b, self.workdir): reps
+                     for (s, b), reps in pending_jobs(self.study, self.workdir).items()}
+        self.total_reps = sum(self.todo.values())
+        self.start = time.time()
         self._stop = threading.Event()
 
     def _done(self) -> tuple[int, int]:
-        shards = rows = 0
-        for path, n in self.expected.items():
-            if path.exists():
-                shards += 1
-                rows += n
-        return shards, rows
+        jobs_done = reps = 0
+        for path, n in self.todo.items():
+            try:
+                fresh = path.stat().st_mtime >= self.start - 1
+            except FileNotFoundError:
+                continue
+            if fresh:
+                jobs_done += 1
+                reps += n
+        return jobs_done, reps
 
     def line(self) -> str:
-        shards, rows = self._done()
-        elapsed = time.monotonic() - self.start
-        fresh = shards - self.done_at_start
-        left = len(self.expected) - shards
+        done, reps = self._done()
+        elapsed = time.time() - self.start
+        left = len(self.todo) - done
         if left == 0:
             eta = "simulation done; ingest and report"
-        elif fresh > 0:
-            eta = f"about {_duration(elapsed / fresh * left)} left"
+        elif done > 0:
+            eta = f"about {_duration(elapsed / reps * (self.total_reps - reps))} left"
         else:
             eta = "estimating time left"
-        return (f"shards {shards}/{len(self.expected)} · replicates {rows:,}/{self.total_rows:,} "
+        return (f"jobs {done}/{len(self.todo)} · replicates {reps:,}/{self.total_reps:,} "
                 f"· {_duration(elapsed)} elapsed · {eta}")
 
     def _loop(self, interval: float, tty: bool):
@@ -211,10 +221,10 @@ def run_study(study: Study, study_file: Path, workdir: Path, cores: int, extra: 
 
 def _force_if_shards_missing(study: Study, workdir: Path) -> list[str]:
     """Snakemake does not rebuild a missing intermediate file while the files made
-    from it are present and newer, so a removed shard would never come back: when
-    the store exists and a shard is missing, force the ingest rule, which needs it."""
+    from it are present and newer, so a removed job record would never come back:
+    when the store exists and a record is missing, force the ingest rule, which needs it."""
     store = results_dir(study.name, workdir) / "store.duckdb"
-    if store.exists() and any(not p.exists() for p in jobs.shard_paths(study, workdir)):
+    if store.exists() and any(not p.exists() for p in jobs.job_record_paths(study, workdir)):
         return ["--forcerun", "ingest"]
     return []
 

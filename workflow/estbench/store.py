@@ -20,6 +20,7 @@ import pyarrow as pa
 from . import plugins
 from .dgms import build_dgm
 from .errors import UserError
+from .paths import job_record_file
 from .measures import performance_and_checks
 from .scenarios import canonical_json
 from .shard import SHARD_SCHEMA, ShardProblem, verify_shard
@@ -88,19 +89,25 @@ def open_read_only(store: Path | str) -> duckdb.DuckDBPyConnection:
 RECOMPUTE_MARKER = "shards-to-recompute.txt"
 
 
+def _send_back(path: Path, problem: str) -> UserError:
+    """Remove a bad or missing shard and its job's record, so the next run recomputes
+    it; list it in the recompute marker; return the error to raise."""
+    results = path.parents[3]  # results/<study>/ of shards/<scenario>/<estimator>/<first>.parquet
+    path.unlink(missing_ok=True)
+    job_record_file(results, path.parts[-3], int(path.stem)).unlink(missing_ok=True)
+    with open(results / RECOMPUTE_MARKER, "a") as fh:
+        fh.write(f"{path}\t{problem}\n")
+    return UserError(f"shard {path} {problem}; it was removed and will be recomputed on the next run")
+
+
 def _check_shard(path: Path, study: Study) -> dict:
-    """Metadata of a sound shard. A corrupt one is deleted (so the next run recomputes
-    it), listed in the recompute marker, and reported as a ``UserError``."""
+    """Metadata of a sound shard; a corrupt one is sent back (see ``_send_back``)."""
     try:
         meta = verify_shard(path)
         if meta["block_size"] != study.block_size:
             raise ShardProblem(f"has block_size {meta['block_size']}, the study {study.block_size}")
     except ShardProblem as exc:
-        path.unlink(missing_ok=True)
-        marker = path.parents[3] / RECOMPUTE_MARKER  # results/<study>/ of shards/<s>/<e>/<b>.parquet
-        with open(marker, "a") as fh:
-            fh.write(f"{path}\t{exc}\n")
-        raise UserError(f"shard {path} {exc}; it was removed and will be recomputed on the next run") from None
+        raise _send_back(path, str(exc)) from None
     return meta
 
 
@@ -153,10 +160,14 @@ def _write_derived(con, study: Study) -> None:
 def ingest(store: Path | str, study: Study, shards: Iterable[Path | str]) -> dict:
     """Bring the store up to date with *shards* and recompute the measures.
 
-    Returns counts: shards added, replaced, removed and unchanged, and rows.
+    Returns counts (shards added, replaced, removed and unchanged, and rows) and seconds.
     """
+    start = time.perf_counter()
     store = Path(store)
     shards = [Path(p) for p in shards]
+    for path in shards:
+        if not path.exists():
+            raise _send_back(path, "is missing")
     wanted = {str(p): p for p in shards}
     digests = {str(p): sha256_file(p) for p in shards}
     store.parent.mkdir(parents=True, exist_ok=True)
@@ -202,7 +213,8 @@ def ingest(store: Path | str, study: Study, shards: Iterable[Path | str]) -> dic
     con.close()
     return {"added": len([p for p in fresh if p not in known]), "replaced": len([p for p in fresh if p in known]),
             "removed": len([p for p in stale if p not in wanted]),
-            "unchanged": len(wanted) - len(fresh), "rows": rows}
+            "unchanged": len(wanted) - len(fresh), "rows": rows,
+            "seconds": round(time.perf_counter() - start, 3)}
 
 
 def read_table(store: Path | str, sql: str, params=None) -> pa.Table:

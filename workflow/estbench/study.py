@@ -137,6 +137,11 @@ class EstimatorSpec:
     description: str = ""
 
 
+#: Values (block_size x n per block) one job draws when ``blocks_per_job`` is 'auto':
+#: several seconds of work for cheap estimators, so start-up stays a few per cent.
+AUTO_VALUES_PER_JOB = 50_000_000
+
+
 @dataclass(frozen=True)
 class Study:
     """A validated study, with defaults applied."""
@@ -146,7 +151,7 @@ class Study:
     seed: int
     replicates: int
     block_size: int
-    blocks_per_job: int
+    blocks_per_job: int | None   #: None = 'auto', sized per scenario by the data drawn
     level: float
     sample_sizes: tuple
     dgms: Mapping[str, Mapping]
@@ -177,9 +182,25 @@ class Study:
     def scenarios(self) -> list[Scenario]:
         return expand_study(self.dgms, self.sample_sizes)
 
+    @cached_property
+    def _scenario_n(self) -> dict:
+        return {s.key: s.n for s in self.scenarios}
+
+    def job_blocks(self, scenario: str | None = None) -> int:
+        """Seed blocks per job of one scenario: ``blocks_per_job``, or if 'auto' enough
+        blocks to draw about ``AUTO_VALUES_PER_JOB`` values (block_size x n each).
+
+        It depends on block_size and n only, never on the estimators or the
+        replicate count, so adding either keeps every existing job's blocks.
+        """
+        if self.blocks_per_job is not None:
+            return self.blocks_per_job
+        n = self._scenario_n[scenario] if scenario else max(self.sample_sizes)
+        return max(1, AUTO_VALUES_PER_JOB // (self.block_size * n))
+
     def job_first_blocks(self, scenario: str | None = None) -> list[int]:
-        """First seed block of every shard of a scenario x estimator."""
-        return list(range(0, self.blocks_of(scenario), self.blocks_per_job))
+        """First seed block of every job (and shard) of a scenario."""
+        return list(range(0, self.blocks_of(scenario), self.job_blocks(scenario)))
 
     def blocks_of(self, scenario: str | None) -> int:
         """Seed blocks of one scenario: ``n_blocks``, or more where precision asked for them."""
@@ -378,7 +399,7 @@ def study_from_mapping(raw: Any, source: Path | None = None) -> Study:
     return Study(
         name=raw["study"], description=raw.get("description", ""), seed=int(raw["seed"]),
         replicates=int(raw["replicates"]), block_size=int(raw.get("block_size", 1000)),
-        blocks_per_job=int(raw.get("blocks_per_job", 10)), level=float(raw.get("level", 0.95)),
+        blocks_per_job=None if raw.get("blocks_per_job", "auto") == "auto" else int(raw["blocks_per_job"]), level=float(raw.get("level", 0.95)),
         sample_sizes=tuple(int(n) for n in raw["sample_sizes"]), dgms=dict(raw["dgms"]),
         estimators=estimators, reference=raw.get("reference"),
         targets=dict(raw.get("targets", {})), report=dict(raw.get("report", {})),

@@ -22,10 +22,10 @@ RESULTS = f"results/{STUDY.name}"
 STORE = f"{RESULTS}/store.duckdb"
 REPORT_HTML = f"{RESULTS}/report.html"
 PERFORMANCE_CSV = f"{RESULTS}/performance.csv"
-ALL_SHARDS = [str(p) for p in jobs.shard_paths(STUDY)]
+JOB_RECORDS = [str(p) for p in jobs.job_record_paths(STUDY)]
+ESTIMATOR_SOURCES = jobs.estimator_sources(STUDY)
 
 
 wildcard_constraints:
     scenario="[0-9a-f]{16}",
-    estimator="[A-Za-z][A-Za-z0-9_-]*",
     first_block="[0-9]+",

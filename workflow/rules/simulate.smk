@@ -1,17 +1,19 @@
-# One job per scenario x estimator x range of seed blocks; the engine does the work.
-# update(): Snakemake keeps an existing shard while the job runs, so a job whose
-# range grew (more replicates) or that was killed reuses the blocks already there.
-rule shard:
+# One job per scenario x range of seed blocks: it draws each block once, writes
+# one shard per estimator, and ends by writing its record (the output Snakemake
+# tracks). A rerun (an estimator added or edited, more replicates) recomputes
+# only the shards whose own spec or code changed; the others are not touched.
+rule simulate:
     input:
-        code=lambda w: jobs.estimator_sources(STUDY, w.estimator),
+        code=ESTIMATOR_SOURCES,
     output:
-        update(f"{RESULTS}/shards/{{scenario}}/{{estimator}}/{{first_block}}.parquet"),
+        f"{RESULTS}/jobs/{{scenario}}/{{first_block}}.json",
     params:
-        spec=lambda w: jobs.shard_spec_json(STUDY, w.scenario, w.estimator, int(w.first_block)),
+        spec=lambda w: jobs.job_spec_json(STUDY, w.scenario, int(w.first_block)),
     log:
-        f"{RESULTS}/logs/shards/{{scenario}}/{{estimator}}/{{first_block}}.log",
+        f"{RESULTS}/logs/jobs/{{scenario}}/{{first_block}}.log",
     resources:
         mem_mb=1000,
         runtime=60,
     shell:
-        "{PYTHON} -m estbench.shard --spec {params.spec:q} {SEARCH_ARGS} --out {output:q} 2> {log:q}"
+        "{PYTHON} -m estbench.shard --spec {params.spec:q} {SEARCH_ARGS} --results {RESULTS:q} "
+        "--record {output:q} 2> {log:q}"

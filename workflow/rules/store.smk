@@ -1,7 +1,7 @@
 # The single writer of the store. update(): a failed ingest restores the previous store.
 rule ingest:
     input:
-        shards=ALL_SHARDS,
+        jobs=JOB_RECORDS,
         study=STUDY_FILE,
     output:
         update(STORE),

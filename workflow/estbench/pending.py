@@ -1,0 +1,55 @@
+"""What a run will compute, and why: every shard compared with the spec and code it must have.
+
+The same comparison (``shard.shard_state``) decides, inside each job, which
+shards to recompute; ``estbench status`` and the runner's progress line use it
+to say what will run before it runs.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+from . import jobs
+from .paths import job_record_path, shard_path
+from .shard import shard_tasks
+from .study import Study
+
+
+@dataclass(frozen=True)
+class ShardPlan:
+    """One shard of the study and what the next run does with it."""
+
+    scenario: str
+    estimator: str
+    first_block: int
+    replicates: int
+    reason: str      #: 'up to date', or why it will be (re)computed
+    path: Path
+
+    @property
+    def pending(self) -> bool:
+        return self.reason != "up to date"
+
+
+def shard_plans(study: Study, workdir: Path | str = ".") -> list[ShardPlan]:
+    """Every shard of the study with its state on disk."""
+    plans = []
+    for scenario, first in jobs.job_keys(study):
+        spec = jobs.job_spec(study, scenario, first)
+        outputs = {e: shard_path(study.name, scenario, e, first, workdir) for e in study.estimators}
+        for task in shard_tasks(spec, study.search_dirs, outputs):
+            plans.append(ShardPlan(scenario, task.name, first, spec["n_blocks"] * spec["block_size"],
+                                   task.state.reason, task.out))
+    return plans
+
+
+def pending_jobs(study: Study, workdir: Path | str = ".") -> dict[tuple[str, int], int]:
+    """(scenario, first block) -> replicates of every job the next run will run:
+    those with a shard to compute or without a record."""
+    out = {}
+    for plan in shard_plans(study, workdir):
+        key = (plan.scenario, plan.first_block)
+        if plan.pending or not job_record_path(study.name, *key, workdir).exists():
+            out[key] = plan.replicates
+    return out
