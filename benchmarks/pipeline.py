@@ -14,8 +14,8 @@ run and in alternation (median over --repeats):
 - estbench: a cold ``estbench run`` in a fresh folder, all stages (shards,
   ingest, report).
 
-It prints the ratios the issue asks for and the largest shard-job memory
-(recorded by each job in its shard's metadata). Timings are wall-clock seconds
+It prints the ratios the issue asks for and the largest simulation-job memory
+(recorded by each job in its record). Timings are wall-clock seconds
 on this machine; only the ratios are meant to travel.
 """
 
@@ -53,10 +53,9 @@ ESTIMATORS = {
 
 def reference_study(replicates: int) -> dict:
     block = 1000
-    blocks = -(-replicates // block)
     return {
         "study": f"bench-{replicates}", "seed": 2026, "replicates": replicates,
-        "block_size": block, "blocks_per_job": max(1, blocks),  # one job per scenario x estimator
+        "block_size": block,  # blocks_per_job: 'auto' (the default)
         "sample_sizes": SAMPLE_SIZES,
         "dgms": {"normal": {"distribution": "norm", "params": {"loc": 0.0, "scale": 1.0}}},
         "estimators": ESTIMATORS, "reference": "mean",
@@ -94,7 +93,7 @@ def time_loop(raw: dict, subsample: int = 400) -> float:
 
 
 def time_estbench(raw: dict, cores: int) -> tuple[float, float]:
-    """Cold end-to-end run in a fresh folder; returns (seconds, largest shard-job RSS in MB)."""
+    """Cold end-to-end run in a fresh folder; returns (seconds, largest simulation-job RSS in MB)."""
     with tempfile.TemporaryDirectory(prefix="estbench-bench-") as tmp:
         path = Path(tmp) / "study.yaml"
         path.write_text(yaml.safe_dump(raw, sort_keys=False))
@@ -102,9 +101,8 @@ def time_estbench(raw: dict, cores: int) -> tuple[float, float]:
         subprocess.run([sys.executable, "-m", "estbench.cli", "run", str(path), "--cores", str(cores)],
                        cwd=tmp, check=True, capture_output=True)
         seconds = time.perf_counter() - start
-        import pyarrow.parquet as pq
-        rss = max(json.loads(pq.read_schema(p).metadata[b"estbench"]).get("max_rss_mb", 0)
-                  for p in (Path(tmp) / "results").rglob("*.parquet"))
+        rss = max(json.loads(p.read_text())["max_rss_mb"]
+                  for p in (Path(tmp) / "results").glob("*/jobs/*/*.json"))
     return seconds, rss
 
 
@@ -130,7 +128,7 @@ def main() -> None:
             runs["rss"].append(rss)
         results[reps] = {k: statistics.median(v) for k, v in runs.items()}
     header = ("replicates", "limit s", "loop s", "estbench s", "estbench/limit", "loop/estbench",
-              "max shard RSS MB")
+              "max job RSS MB")
     print(" | ".join(header))
     for reps, r in results.items():
         print(" | ".join([f"{reps:,}", f"{r['limit']:.1f}", f"{r['loop']:.1f}", f"{r['estbench']:.1f}",

@@ -3,12 +3,12 @@
     .venv/bin/python benchmarks/resilience.py [--replicates 20000]
 
 - resume: a cold run is killed (SIGKILL to its process group) when about half
-  its shards exist, then run again to the end. Work = CPU seconds of every
+  its jobs are done, then run again to the end. Work = CPU seconds of every
   process of both runs (children included) against one uninterrupted run.
 - add an estimator: a finished study gains one estimator and runs again.
-  Work = CPU seconds of that run against that estimator's own compute in the
-  uninterrupted run (its shard jobs' seconds, from the store's provenance) plus
-  the report step alone (``estbench report``).
+  Work = CPU seconds of that run against that estimator's own compute (its
+  shards' seconds from the store's provenance: drawing the data it needs and
+  applying it) plus the report step alone (``estbench report``).
 
 CPU time, unlike wall time, does not move with other load on a shared machine.
 """
@@ -28,7 +28,7 @@ from pathlib import Path
 import yaml
 
 STUDY = {
-    "study": "resilience", "seed": 99, "block_size": 1000, "blocks_per_job": 5,
+    "study": "resilience", "seed": 99, "block_size": 1000,
     "sample_sizes": [20, 100, 500],
     "dgms": {"normal": {"distribution": "norm", "params": {"loc": 0.0, "scale": 1.0}},
              "heavy": {"distribution": "t", "params": {"df": 3}}},
@@ -49,20 +49,39 @@ def cpu_of(cmd, cwd) -> float:
     return (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
 
 
-def killed_work(cmd, cwd, stop_when, cores: int) -> float:
-    """An upper bound on the CPU seconds of a run killed when *stop_when* turns true.
+def session_cpu(session: int) -> float:
+    """CPU seconds used so far by every process of *session* and the children they reaped.
 
-    Processes killed with SIGKILL are reaped by init, so their CPU time never
-    reaches this process's RUSAGE_CHILDREN; cores x wall time bounds it instead.
+    Each live process counts its own time (utime + stime) and that of the children
+    it has reaped (cutime + cstime), so every CPU second is counted once.
     """
-    start = time.monotonic()
+    tick = os.sysconf("SC_CLK_TCK")
+    total = 0
+    for pid in filter(str.isdigit, os.listdir("/proc")):
+        try:
+            if os.getsid(int(pid)) != session:
+                continue
+            fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+        except (OSError, IndexError):
+            continue
+        total += sum(int(v) for v in fields[11:15])  # utime stime cutime cstime
+    return total / tick
+
+
+def killed_work(cmd, cwd, stop_when) -> float:
+    """CPU seconds of a run killed with SIGKILL when *stop_when* turns true, read from
+    /proc just before the kill (killed processes are reaped by init, so their time
+    never reaches this process's RUSAGE_CHILDREN)."""
     proc = subprocess.Popen(cmd, cwd=cwd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
                             start_new_session=True)
+    used = 0.0
     while proc.poll() is None and not stop_when():
-        time.sleep(0.05)
+        used = session_cpu(proc.pid)
+        time.sleep(0.02)
+    used = max(used, session_cpu(proc.pid))
     os.killpg(proc.pid, signal.SIGKILL)
     proc.wait()
-    return cores * (time.monotonic() - start)
+    return used
 
 
 def estbench(*args) -> list[str]:
@@ -82,11 +101,11 @@ def main() -> None:
             (folder / "study.yaml").write_text(yaml.safe_dump(study, sort_keys=False))
         uninterrupted = cpu_of(estbench("run", "study.yaml", "--cores", "2"), plain)
 
-        shards = killed / "results" / "resilience" / "shards"
-        total = len(list((plain / "results" / "resilience" / "shards").rglob("*.parquet")))
-        half = lambda: shards.exists() and len(list(shards.rglob("*.parquet"))) >= total // 2
-        first = killed_work(estbench("run", "study.yaml", "--cores", "2"), killed, half, cores=2)
-        done_at_kill = len(list(shards.rglob("*.parquet")))
+        records = killed / "results" / "resilience" / "jobs"
+        total = len(list((plain / "results" / "resilience" / "jobs").rglob("*.json")))
+        half = lambda: records.exists() and len(list(records.rglob("*.json"))) >= total // 2
+        first = killed_work(estbench("run", "study.yaml", "--cores", "2"), killed, half)
+        done_at_kill = len(list(records.rglob("*.json")))
         second = cpu_of(estbench("run", "study.yaml", "--cores", "2"), killed)
 
         grown = {**study, "estimators": {**study["estimators"], **EXTRA}}
@@ -99,11 +118,10 @@ def main() -> None:
         report = cpu_of(estbench("report", "study.yaml"), plain)
 
     print(f"machine: {os.cpu_count()} cores; {time.strftime('%Y-%m-%d %H:%M')}; "
-          f"{args.replicates:,} replicates x 6 scenarios x 3 estimators, {total} shards")
+          f"{args.replicates:,} replicates x 6 scenarios x 3 estimators, {total} jobs")
     print(f"uninterrupted run: {uninterrupted:.1f} CPU-s")
-    print(f"killed at {done_at_kill}/{total} shards: at most {first:.1f} (2 cores x wall) + rerun "
-          f"{second:.1f} = {first + second:.1f} CPU-s -> at most {(first + second) / uninterrupted:.3f}x "
-          f"the uninterrupted work")
+    print(f"killed at {done_at_kill}/{total} jobs: {first:.1f} + rerun {second:.1f} = "
+          f"{first + second:.1f} CPU-s -> {(first + second) / uninterrupted:.3f}x the uninterrupted work")
     print(f"adding one estimator: {added:.1f} CPU-s; its own shard compute {own:.1f} s + report "
           f"{report:.1f} CPU-s = {own + report:.1f} -> {added / (own + report):.2f}x")
 
