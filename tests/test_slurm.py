@@ -84,11 +84,12 @@ def test_slurm_run_matches_local_run(tmp_path, slurm_cluster):
     # finished jobs for MinJobAge (300 s on the .ci/slurm-up cluster).
     run_id = re.search(r"SLURM run ID: (\S+)", log)
     assert run_id, f"the run did not go through the SLURM executor:\n{log}"
-    shards = sorted((cluster / "results/tiny/shards").rglob("*.parquet"))
-    assert len(shards) == 4
-    expected = sorted(f"rule_shard_wildcards_{p.parent.parent.name}_{p.parent.name}_{p.stem}" for p in shards)
+    assert len(list((cluster / "results/tiny/shards").rglob("*.parquet"))) == 4
+    records = sorted((cluster / "results/tiny/jobs").rglob("*.json"))
+    assert len(records) == 2  # one job per scenario, each writing a shard per estimator
+    expected = sorted(f"rule_simulate_wildcards_{p.parent.name}_{p.stem}" for p in records)
     jobs = _slurm_jobs(run_id.group(1))
-    assert sorted(comment for _, comment in jobs) == expected, "one SLURM job per shard, and only shards"
+    assert sorted(comment for _, comment in jobs) == expected, "one SLURM job per simulation job, and only those"
     assert {state for state, _ in jobs} == {"COMPLETED"}
     # ingest and report read and write the store on this machine
     assert "localrule ingest:" in log and "localrule report:" in log
@@ -102,25 +103,25 @@ def test_profile_reads_partition_and_account_from_the_environment(tmp_path, monk
     # A dry run plans the SLURM jobs without a cluster, showing each job's resources.
     path = write_study(tmp_path, tiny_study(blocks_per_job=6))
 
-    def planned_shard_resources() -> list[str]:
+    def planned_job_resources() -> list[str]:
         proc = run_cli("run", path, "--verbose", "--", "--profile", SLURM_PROFILE, "--dry-run",
                        cwd=tmp_path, check=True)
         resources, rule = [], None
         for line in (proc.stdout + "\n" + proc.stderr).splitlines():
             if re.fullmatch(r"(local)?rule \w+:", line):
                 rule = line
-            elif rule == "rule shard:" and line.strip().startswith("resources:"):
+            elif rule == "rule simulate:" and line.strip().startswith("resources:"):
                 resources.append(line.strip())
         return resources
 
     monkeypatch.delenv("ESTBENCH_SLURM_PARTITION", raising=False)
     monkeypatch.delenv("ESTBENCH_SLURM_ACCOUNT", raising=False)
-    unset = planned_shard_resources()
-    assert len(unset) == 4 and not any("slurm_" in line for line in unset), unset
+    unset = planned_job_resources()
+    assert len(unset) == 2 and not any("slurm_" in line for line in unset), unset
 
     monkeypatch.setenv("ESTBENCH_SLURM_PARTITION", "short")
     monkeypatch.setenv("ESTBENCH_SLURM_ACCOUNT", "survey_team")
-    chosen = planned_shard_resources()
-    assert len(chosen) == 4, chosen
+    chosen = planned_job_resources()
+    assert len(chosen) == 2, chosen
     for line in chosen:
         assert "slurm_partition=short" in line and "slurm_account=survey_team" in line, line
