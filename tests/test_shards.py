@@ -255,3 +255,12 @@ def test_auto_job_size_follows_the_data_drawn_not_the_estimators(tmp_path):
     more = _study(tmp_path, blocks_per_job="auto", replicates=2 * 10**6, block_size=1000,
                   sample_sizes=[10, 1000], estimators={"sd": {"function": "scale:sd", "target": "sd"}})
     assert more.job_first_blocks(large)[:20] == study.job_first_blocks(large)
+
+
+def test_string_columns_match_pyarrows_own_conversion():
+    from estbench.shard import _strings
+    values = ["ok", None, "error", "ValueError: ratio µ/σ undefined", None, ""]
+    built = _strings(values)
+    built.validate(full=True)
+    assert built.equals(pa.array(values, pa.string()))  # reference: pyarrow's converter
+    assert _strings([None] * 3).null_count == 3 and _strings([]).equals(pa.array([], pa.string()))
