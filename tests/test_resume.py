@@ -80,7 +80,7 @@ def test_sigkill_at_any_stage_then_rerun_gives_identical_results(tmp_path, unint
     path = _study(tmp_path)
     proc = _start(tmp_path, path)
     ready = {"shards": lambda: 0 < len(_shards(tmp_path)) < 12 and _running("estbench.shard", proc.pid),
-             "ingest": lambda: _running("ingest.py", proc.pid),
+             "ingest": lambda: _running("estbench.store", proc.pid),
              "report": lambda: _running("estbench.report", proc.pid)}[stage]
     _kill_when(proc, ready)
     rerun = run_cli("run", path, "--cores", "2", cwd=tmp_path, check=True)

@@ -129,3 +129,10 @@ def shards_of_job(results: Path | str, job: Mapping) -> dict[str, Path]:
     key, first = job["scenario"]["key"], job["first_block"]
     return {e["estimator"]["name"]: shard_file(results, key, e["estimator"]["name"], first)
             for e in job["estimators"]}
+
+
+def job_values(study: Study, scenario: str, first_block: int) -> int:
+    """Values a job draws (n per replicate): its scheduling priority, so the largest
+    jobs start first and the small ones fill in at the end."""
+    n = scenario_by_key(study, scenario).n
+    return n * job_n_blocks(study, scenario, first_block) * study.block_size

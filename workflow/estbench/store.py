@@ -189,19 +189,18 @@ def ingest(store: Path | str, study: Study, shards: Iterable[Path | str]) -> dic
             con.execute("DELETE FROM provenance WHERE list_contains(?, path)", [stale])
             con.execute("DROP TABLE stale")
         now = time.strftime("%Y-%m-%dT%H:%M:%S%z")
-        for p in sorted(fresh):
-            path = wanted[p]
-            meta = _check_shard(path, study)
-            columns = ", ".join(SHARD_SCHEMA.names)
-            con.execute(f"INSERT INTO estimates SELECT {columns} FROM read_parquet('{_sql_str(path)}')")
-            con.execute("INSERT INTO shards VALUES (?,?,?,?,?,?,?,?,?)", [
-                p, meta["scenario"], meta["estimator"], meta["first_block"], meta["n_blocks"],
-                meta["rows"], path.stat().st_size, digests[p], now])
-            v = meta["versions"]
-            con.execute("INSERT INTO provenance VALUES (?,?,?,?,?,?,?,?,?,?,?,?)", [
-                p, meta["seed"], meta["scenario_spawn_key"], meta["function"], meta["code_hash"],
-                v["estbench"], v["numpy"], v["scipy"], v["pyarrow"], v["python"], meta["seconds"],
-                meta["created"]])
+        metas = {p: _check_shard(wanted[p], study) for p in sorted(fresh)}
+        if metas:  # one statement: DuckDB reads the files in parallel, streaming row groups
+            files = ", ".join(f"'{_sql_str(wanted[p])}'" for p in metas)
+            con.execute(f"INSERT INTO estimates SELECT {', '.join(SHARD_SCHEMA.names)} "
+                        f"FROM read_parquet([{files}])")
+            con.executemany("INSERT INTO shards VALUES (?,?,?,?,?,?,?,?,?)", [
+                [p, m["scenario"], m["estimator"], m["first_block"], m["n_blocks"], m["rows"],
+                 wanted[p].stat().st_size, digests[p], now] for p, m in metas.items()])
+            con.executemany("INSERT INTO provenance VALUES (?,?,?,?,?,?,?,?,?,?,?,?)", [
+                [p, m["seed"], m["scenario_spawn_key"], m["function"], m["code_hash"],
+                 *(m["versions"][k] for k in ("estbench", "numpy", "scipy", "pyarrow", "python")),
+                 m["seconds"], m["created"]] for p, m in metas.items()])
         _write_study_tables(con, study)
         _write_derived(con, study)
         rows = con.execute("SELECT count(*) FROM estimates").fetchone()[0]
@@ -224,3 +223,33 @@ def read_table(store: Path | str, sql: str, params=None) -> pa.Table:
         return con.sql(sql, params=params).to_arrow_table()
     finally:
         con.close()
+
+
+def main(argv=None) -> int:
+    """``python -m estbench.store``: the ingest step of the workflow."""
+    import argparse
+    import sys
+
+    from .jobs import shard_paths
+    from .precision import with_allocation
+    from .study import load_study
+    parser = argparse.ArgumentParser(prog="python -m estbench.store",
+                                     description="Ingest a study's shards into its store (used by the workflow).")
+    parser.add_argument("--study", required=True, help="the study file")
+    parser.add_argument("--store", required=True, help="the DuckDB store to bring up to date")
+    args = parser.parse_args(argv)
+    study = load_study(args.study)
+    store = Path(args.store)
+    workdir = store.parents[2]  # <workdir>/results/<study>/store.duckdb
+    study = with_allocation(study, workdir)
+    try:
+        summary = ingest(store, study, shard_paths(study, workdir))
+    except UserError as exc:
+        print(f"estbench: {exc}", file=sys.stderr)
+        return 2
+    print(json.dumps(summary), file=sys.stderr)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -9,6 +9,7 @@ rule simulate:
         f"{RESULTS}/jobs/{{scenario}}/{{first_block}}.json",
     params:
         spec=lambda w: jobs.job_spec_json(STUDY, w.scenario, int(w.first_block)),
+    priority: lambda w: jobs.job_values(STUDY, w.scenario, int(w.first_block))
     log:
         f"{RESULTS}/logs/jobs/{{scenario}}/{{first_block}}.log",
     resources:

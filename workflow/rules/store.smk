@@ -1,4 +1,5 @@
 # The single writer of the store. update(): a failed ingest restores the previous store.
+# Its inputs are the job records; the shards it loads are those the study names.
 rule ingest:
     input:
         jobs=JOB_RECORDS,
@@ -7,5 +8,5 @@ rule ingest:
         update(STORE),
     log:
         f"{RESULTS}/logs/ingest.log",
-    script:
-        "../scripts/ingest.py"
+    shell:
+        "{PYTHON} -m estbench.store --study {input.study:q} --store {output:q} 2> {log:q}"
