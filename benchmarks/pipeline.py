@@ -1,7 +1,7 @@
 """Pipeline cost against the vectorised limit and the per-replicate loop, side by side.
 
     .venv/bin/python benchmarks/pipeline.py [--replicates 10000 100000] [--repeats 3]
-                                            [--with-million] [--cores 2]
+                                            [--with-million [--million-repeats 1]] [--cores 2]
 
 Reference study: normal data, n in {10, 20, 50, 100, 200, 500, 1000}, estimators
 mean, median, 10% trimmed mean and SD. For each replicate count it times, in one
@@ -24,6 +24,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import re
 import statistics
 import subprocess
 import sys
@@ -39,6 +40,7 @@ sys.path[:0] = [str(ROOT / "workflow"), str(ROOT / "estimators")]
 
 from estbench.dgms import build_dgm  # noqa: E402
 from estbench.plugins import resolve, search_path  # noqa: E402
+from estbench.runner import snakemake_base  # noqa: E402
 from estbench.seeding import block_generator  # noqa: E402
 from estbench.study import study_from_mapping  # noqa: E402
 
@@ -92,8 +94,15 @@ def time_loop(raw: dict, subsample: int = 400) -> float:
     return (time.perf_counter() - start) * raw["replicates"] / subsample
 
 
-def time_estbench(raw: dict, cores: int) -> tuple[float, float]:
-    """Cold end-to-end run in a fresh folder; returns (seconds, largest simulation-job RSS in MB)."""
+def time_estbench(raw: dict, cores: int) -> dict:
+    """Cold end-to-end run in a fresh folder.
+
+    Returns its wall seconds; the largest simulation-job RSS (MB, from the job
+    records); the work it had to do (the jobs' in-process seconds spread over
+    *cores*, plus the in-process seconds of ingest and report, from their logs);
+    and the time Snakemake takes to build the DAG (a dry run of the same study).
+    Wall minus work is what start-ups, scheduling and uneven load cost.
+    """
     with tempfile.TemporaryDirectory(prefix="estbench-bench-") as tmp:
         path = Path(tmp) / "study.yaml"
         path.write_text(yaml.safe_dump(raw, sort_keys=False))
@@ -101,9 +110,17 @@ def time_estbench(raw: dict, cores: int) -> tuple[float, float]:
         subprocess.run([sys.executable, "-m", "estbench.cli", "run", str(path), "--cores", str(cores)],
                        cwd=tmp, check=True, capture_output=True)
         seconds = time.perf_counter() - start
-        rss = max(json.loads(p.read_text())["max_rss_mb"]
-                  for p in (Path(tmp) / "results").glob("*/jobs/*/*.json"))
-    return seconds, rss
+        out = Path(tmp) / "results" / raw["study"]
+        records = [json.loads(p.read_text()) for p in out.glob("jobs/*/*.json")]
+        ingest = json.loads((out / "logs" / "ingest.log").read_text().strip().splitlines()[-1])["seconds"]
+        report = float(re.search(r"written in ([0-9.]+) s", (out / "logs" / "report.log").read_text()).group(1))
+        start = time.perf_counter()
+        subprocess.run([*snakemake_base(path, Path(tmp)), "--dry-run", "--quiet"], cwd=tmp, check=True,
+                       capture_output=True)
+        dag = time.perf_counter() - start
+    work = sum(r["seconds"] for r in records) / cores + ingest + report
+    return {"estbench": seconds, "rss": max(r["max_rss_mb"] for r in records), "work": work,
+            "jobs": len(records), "dag": dag}
 
 
 def main() -> None:
@@ -111,31 +128,37 @@ def main() -> None:
     parser.add_argument("--replicates", type=int, nargs="+", default=[10_000, 100_000])
     parser.add_argument("--with-million", action="store_true", help="add the 10^6-replicate row")
     parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--million-repeats", type=int, default=1,
+                        help="repeats of the 10^6 row (each takes minutes)")
     parser.add_argument("--cores", type=int, default=os.cpu_count() or 1)
     args = parser.parse_args()
     counts = args.replicates + ([1_000_000] if args.with_million else [])
     print(f"machine: {os.cpu_count()} cores; estbench run --cores {args.cores}; "
-          f"{time.strftime('%Y-%m-%d %H:%M')}; medians of {args.repeats} repeats")
+          f"{time.strftime('%Y-%m-%d %H:%M')}; medians of {args.repeats} repeats "
+          f"({args.million_repeats} at 10^6)")
     results = {}
     for reps in counts:
         raw = reference_study(reps)
-        runs = {"limit": [], "loop": [], "estbench": [], "rss": []}
-        for _ in range(args.repeats):  # alternate, so load changes hit every variant alike
-            runs["limit"].append(time_limit(raw))
-            runs["loop"].append(time_loop(raw))
-            seconds, rss = time_estbench(raw, args.cores)
-            runs["estbench"].append(seconds)
-            runs["rss"].append(rss)
+        runs: dict[str, list] = {}
+        for _ in range(args.million_repeats if reps == 1_000_000 else args.repeats):
+            # alternate, so load changes hit every variant alike
+            runs.setdefault("limit", []).append(time_limit(raw))
+            runs.setdefault("loop", []).append(time_loop(raw))
+            for key, value in time_estbench(raw, args.cores).items():
+                runs.setdefault(key, []).append(value)
         results[reps] = {k: statistics.median(v) for k, v in runs.items()}
-    header = ("replicates", "limit s", "loop s", "estbench s", "estbench/limit", "loop/estbench",
-              "max job RSS MB")
+    header = ("replicates", "jobs", "limit s", "loop s", "estbench s", "estbench/limit", "loop/estbench",
+              "max job RSS MB", "overhead share", "DAG s")
     print(" | ".join(header))
     for reps, r in results.items():
-        print(" | ".join([f"{reps:,}", f"{r['limit']:.1f}", f"{r['loop']:.1f}", f"{r['estbench']:.1f}",
-                          f"{r['estbench'] / r['limit']:.2f}", f"{r['loop'] / r['estbench']:.1f}",
-                          f"{r['rss']:.0f}"]))
+        print(" | ".join([f"{reps:,}", f"{r['jobs']:.0f}", f"{r['limit']:.1f}", f"{r['loop']:.1f}",
+                          f"{r['estbench']:.1f}", f"{r['estbench'] / r['limit']:.2f}",
+                          f"{r['loop'] / r['estbench']:.1f}", f"{r['rss']:.0f}",
+                          f"{1 - r['work'] / r['estbench']:.0%}", f"{r['dag']:.1f}"]))
     if 100_000 in results and 1_000_000 in results:
         print(f"growth 10^5 -> 10^6: {results[1_000_000]['estbench'] / results[100_000]['estbench']:.2f}x")
+    print("overhead share: 1 - (job seconds / cores + ingest + report) / wall: start-ups of the CLI, "
+          "Snakemake and every job, scheduling and uneven load. DAG s: Snakemake's dry run of the study.")
 
 
 if __name__ == "__main__":
