@@ -85,7 +85,8 @@ def synthetic_shard(study, scenario, estimator: str, rng) -> pa.Table:
     }, schema=SHARD_SCHEMA)
 
 
-def build_store(folder: Path, reps: int) -> tuple[Path, int]:
+def write_shards(folder: Path, reps: int):
+    """Synthetic shards of the benchmark study in *folder*; returns (study, study file, shard paths)."""
     raw = study_mapping(reps)
     path = folder / "study.yaml"
     path.write_text(yaml.safe_dump(raw, sort_keys=False))
@@ -102,6 +103,11 @@ def build_store(folder: Path, reps: int) -> tuple[Path, int]:
                 "rows": study.replicates_run, "versions": versions(), "seconds": 0.0,
                 "created": time.strftime("%Y-%m-%dT%H:%M:%S%z")})
             shards.append(out)
+    return study, path, shards
+
+
+def build_store(folder: Path, reps: int) -> tuple[Path, int]:
+    study, _, shards = write_shards(folder, reps)
     store = folder / "store.duckdb"
     ingest(store, study, shards)
     return store, len(study.scenarios) * len(study.estimators) * study.replicates_run

@@ -85,6 +85,11 @@ def open_read_only(store: Path | str) -> duckdb.DuckDBPyConnection:
         raise UserError(f"cannot open the store {store}: {exc}") from None
 
 
+#: Ingest streams Parquet row groups into the store; with these settings DuckDB keeps
+#: its memory under the limit (spilling to ``<store>.tmp``) whatever the number of rows.
+#: Row order is not preserved, which no measure depends on.
+INGEST_SETTINGS = {"memory_limit": "256MB", "preserve_insertion_order": False}
+
 #: Written beside the store when ingest removed a corrupt shard, so `estbench run` reruns it.
 RECOMPUTE_MARKER = "shards-to-recompute.txt"
 
@@ -171,7 +176,7 @@ def ingest(store: Path | str, study: Study, shards: Iterable[Path | str]) -> dic
     wanted = {str(p): p for p in shards}
     digests = {str(p): sha256_file(p) for p in shards}
     store.parent.mkdir(parents=True, exist_ok=True)
-    con = duckdb.connect(str(store))
+    con = duckdb.connect(str(store), config=INGEST_SETTINGS)
     try:
         con.execute(_DDL)
         con.execute("BEGIN TRANSACTION")
