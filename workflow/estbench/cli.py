@@ -82,7 +82,7 @@ def cmd_status(args) -> int:
     plans = shard_plans(study)
     todo = [p for p in plans if p.pending]
     print(f"study {study.name!r}: {len(plans) - len(todo)} of {len(plans)} shards up to date; "
-          f"the next run computes {len(todo)} shard(s) in {len(pending_jobs(study))} job(s)")
+          f"the next run computes {len(todo)} shard(s) in {len(pending_jobs(study, plans=plans))} job(s)")
     for (name, reason), count in sorted(Counter((p.estimator, p.reason) for p in todo).items()):
         reps = sum(p.replicates for p in todo if p.estimator == name and p.reason == reason)
         print(f"  {name}: {count} shard(s), {reps:,} replicates: {reason}")

@@ -44,11 +44,13 @@ def shard_plans(study: Study, workdir: Path | str = ".") -> list[ShardPlan]:
     return plans
 
 
-def pending_jobs(study: Study, workdir: Path | str = ".") -> dict[tuple[str, int], int]:
+def pending_jobs(study: Study, workdir: Path | str = ".",
+                 plans: list[ShardPlan] | None = None) -> dict[tuple[str, int], int]:
     """(scenario, first block) -> replicates of every job the next run will run:
-    those with a shard to compute or without a record."""
+    those with a shard to compute or without a record. *plans*: ``shard_plans``
+    of the study, if already at hand."""
     out = {}
-    for plan in shard_plans(study, workdir):
+    for plan in shard_plans(study, workdir) if plans is None else plans:
         key = (plan.scenario, plan.first_block)
         if plan.pending or not job_record_path(study.name, *key, workdir).exists():
             out[key] = plan.replicates

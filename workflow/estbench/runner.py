@@ -9,8 +9,9 @@
   folder: every run holds a shared ``flock`` on ``.snakemake/estbench.gate``,
   and clearing needs it exclusively.
 - Before Snakemake starts, existing shards get a quick check (footer, metadata,
-  row count); a bad one is removed, with its job's record, so it is recomputed. Ingest checks every
-  page's checksum; if it removes a corrupt shard, the run goes round once more.
+  row count); a bad one is removed, with its job's record, so it is recomputed.
+  Ingest checks every page's checksum; if it removes a corrupt shard, the run
+  goes round once more.
 """
 
 from __future__ import annotations
