@@ -12,7 +12,7 @@ from pathlib import Path
 
 from . import jobs
 from .paths import job_record_path, shard_path
-from .shard import shard_tasks
+from .shard import estimator_code_hash, shard_tasks
 from .study import Study
 
 
@@ -35,10 +35,11 @@ class ShardPlan:
 def shard_plans(study: Study, workdir: Path | str = ".") -> list[ShardPlan]:
     """Every shard of the study with its state on disk."""
     plans = []
+    codes = {e.function: estimator_code_hash(e.function, study.search_dirs) for e in study.estimators.values()}
     for scenario, first in jobs.job_keys(study):
         spec = jobs.job_spec(study, scenario, first)
         outputs = {e: shard_path(study.name, scenario, e, first, workdir) for e in study.estimators}
-        for task in shard_tasks(spec, study.search_dirs, outputs):
+        for task in shard_tasks(spec, study.search_dirs, outputs, codes):
             plans.append(ShardPlan(scenario, task.name, first, spec["n_blocks"] * spec["block_size"],
                                    task.state.reason, task.out))
     return plans

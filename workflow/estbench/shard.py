@@ -152,6 +152,10 @@ class ShardTask:
     state: ShardState
     seconds: float = 0.0
 
+    def __post_init__(self):
+        self.takes_level = plugins.accepts(self.fn, "level")
+        self.takes_rng = plugins.accepts(self.fn, "rng")
+
     @property
     def name(self) -> str:
         return self.spec["estimator"]["name"]
@@ -159,20 +163,29 @@ class ShardTask:
     def kwargs(self, block: int) -> dict:
         """Keyword arguments of the estimator on *block*: its args, level and own stream."""
         kwargs = dict(self.spec["estimator"].get("args", {}))
-        if plugins.accepts(self.fn, "level"):
+        if self.takes_level:
             kwargs["level"] = self.spec["level"]
-        if plugins.accepts(self.fn, "rng"):
+        if self.takes_rng:
             scen = self.spec["scenario"]
             kwargs["rng"] = estimator_generator(self.spec["seed"], scen["spawn_key"], block, self.name)
         return kwargs
 
 
-def shard_tasks(job: Mapping, search_dirs, outputs: Mapping[str, Path] | None = None) -> list[ShardTask]:
-    """The job's shards, each with the state of its existing file in *outputs* (if any)."""
+def estimator_code_hash(function: str, search_dirs) -> str:
+    """Hash of an estimator's code: its module and the same-folder helpers it imports."""
+    return plugins.code_hash(plugins.code_files(function, search_dirs))
+
+
+def shard_tasks(job: Mapping, search_dirs, outputs: Mapping[str, Path] | None = None,
+                codes: Mapping[str, str] | None = None) -> list[ShardTask]:
+    """The job's shards, each with the state of its existing file in *outputs* (if any).
+
+    *codes* maps estimator functions to their code hash, if already computed.
+    """
     tasks = []
     for spec in estimator_specs(job):
         function = spec["estimator"]["function"]
-        code = plugins.code_hash(plugins.code_files(function, search_dirs))
+        code = codes[function] if codes else estimator_code_hash(function, search_dirs)
         out = Path(outputs[spec["estimator"]["name"]]) if outputs else None
         state = shard_state(out, spec, code) if out else ShardState("missing")
         tasks.append(ShardTask(spec, plugins.resolve(function, search_dirs), code, out, state))

@@ -17,13 +17,12 @@ from typing import Iterable
 import duckdb
 import pyarrow as pa
 
-from . import plugins
 from .dgms import build_dgm
 from .errors import UserError
 from .paths import job_record_file
 from .measures import performance_and_checks
 from .scenarios import canonical_json
-from .shard import SHARD_SCHEMA, ShardProblem, verify_shard
+from .shard import SHARD_SCHEMA, ShardProblem, estimator_code_hash, verify_shard
 from .study import Study
 
 #: Tables describing the study; rebuilt by every ingest, so they follow the code's schema.
@@ -140,7 +139,7 @@ def _write_study_tables(con, study: Study) -> None:
     con.executemany("INSERT INTO truths VALUES (?,?,?,?,?)", truth_rows)
     est_rows = []
     for pos, e in enumerate(study.estimators.values()):
-        code = plugins.code_hash(plugins.code_files(e.function, study.search_dirs))
+        code = estimator_code_hash(e.function, study.search_dirs)
         est_rows.append([e.name, e.function, e.target, canonical_json(e.args), e.description,
                          code, e.name == study.reference, pos])
     con.executemany("INSERT INTO estimators VALUES (?,?,?,?,?,?,?,?)", est_rows)
