@@ -43,15 +43,9 @@ def job_record_paths(study: Study, workdir: Path | str = ".") -> list[Path]:
     return [job_record_path(study.name, s, b, workdir) for s, b in job_keys(study)]
 
 
-def shard_rows(study: Study, workdir: Path | str = ".") -> list[tuple[Path, int]]:
-    """Every shard the study needs with the number of replicates it holds."""
-    return [(shard_path(study.name, s, e, b, workdir), job_n_blocks(study, s, b) * study.block_size)
-            for s, b in job_keys(study) for e in study.estimators]
-
-
 def shard_paths(study: Study, workdir: Path | str = ".") -> list[Path]:
     """Every shard the study needs, scenario by scenario."""
-    return [path for path, _ in shard_rows(study, workdir)]
+    return [shard_path(study.name, s, e, b, workdir) for s, b in job_keys(study) for e in study.estimators]
 
 
 def scenario_by_key(study: Study, key: str):

@@ -12,7 +12,7 @@ from pathlib import Path
 
 from . import jobs
 from .paths import job_record_path, shard_path
-from .shard import estimator_code_hash, shard_tasks
+from .shard import DAMAGED, MISSING, UP_TO_DATE, estimator_code_hash, shard_tasks
 from .study import Study
 
 
@@ -29,7 +29,15 @@ class ShardPlan:
 
     @property
     def pending(self) -> bool:
-        return self.reason != "up to date"
+        return self.reason != UP_TO_DATE
+
+    @property
+    def missing(self) -> bool:
+        return self.reason == MISSING
+
+    @property
+    def damaged(self) -> bool:
+        return self.reason.startswith(DAMAGED)
 
 
 def shard_plans(study: Study, workdir: Path | str = ".") -> list[ShardPlan]:

@@ -28,9 +28,9 @@ from pathlib import Path
 
 from . import jobs
 from .errors import UserError
-from .paths import SNAKEFILE, job_record_path, results_dir, shard_path
-from .pending import pending_jobs
-from .shard import ShardProblem, verify_shard
+from .paths import SNAKEFILE, job_record_path, results_dir
+from .pending import ShardPlan, pending_jobs, shard_plans
+from .shard import DAMAGED
 from .store import RECOMPUTE_MARKER
 from .study import Study
 
@@ -88,23 +88,16 @@ def clear_stale_snakemake_locks(gate, snakefile_args: list[str], workdir: Path) 
     return True
 
 
-def remove_bad_shards(study: Study, workdir: Path) -> list[str]:
-    """Quick-check every existing shard; delete a bad one, and the record of its job,
-    so it is recomputed. A job whose shard went missing loses its record too."""
+def remove_bad_shards(study: Study, workdir: Path, plans: list[ShardPlan]) -> list[str]:
+    """Delete every damaged shard (the quick check of ``shard_plans``), and the record
+    of each job with a damaged or missing shard, so the job runs again."""
     removed = []
-    for scenario, first in jobs.job_keys(study):
-        record = job_record_path(study.name, scenario, first, workdir)
-        for name in study.estimators:
-            path = shard_path(study.name, scenario, name, first, workdir)
-            if not path.exists():
-                record.unlink(missing_ok=True)
-                continue
-            try:
-                verify_shard(path, full=False)
-            except ShardProblem as exc:
-                path.unlink(missing_ok=True)
-                record.unlink(missing_ok=True)
-                removed.append(f"{path.relative_to(workdir)} {exc}")
+    for plan in plans:
+        if plan.missing or plan.damaged:
+            job_record_path(study.name, plan.scenario, plan.first_block, workdir).unlink(missing_ok=True)
+        if plan.damaged:
+            plan.path.unlink(missing_ok=True)
+            removed.append(f"{plan.path.relative_to(workdir)} {plan.reason.removeprefix(DAMAGED)}")
     return removed
 
 
@@ -114,11 +107,12 @@ class Progress:
 
     study: Study
     workdir: Path
+    pending: dict          #: (scenario, first block) -> replicates, from ``pending_jobs``
     stream: object = sys.stderr
 
     def __post_init__(self):
         self.todo = {job_record_path(self.study.name, s, b, self.workdir): reps
-                     for (s, b), reps in pending_jobs(self.study, self.workdir).items()}
+                     for (s, b), reps in self.pending.items()}
         self.total_reps = sum(self.todo.values())
         self.start = time.time()
         self._stop = threading.Event()
@@ -199,13 +193,17 @@ def run_study(study: Study, study_file: Path, workdir: Path, cores: int, extra: 
     with study_lock(study, workdir), folder_gate(workdir) as gate:
         if clear_stale_snakemake_locks(gate, snakemake_base(study_file, workdir), workdir):
             print("estbench: cleared Snakemake's locks left by a run that was killed", file=sys.stderr)
-        for line in remove_bad_shards(study, workdir):
+        plans = shard_plans(study, workdir)
+        for line in remove_bad_shards(study, workdir, plans):
             print(f"estbench: removed a damaged shard, to be recomputed: {line}", file=sys.stderr)
         marker = results_dir(study.name, workdir) / RECOMPUTE_MARKER
         for attempt in (1, 2):
             marker.unlink(missing_ok=True)
-            cmd = snakemake_command(study_file, workdir, cores, [*_force_if_shards_missing(study, workdir), *extra])
-            code, log = _call(cmd, study, workdir, verbose)
+            if attempt == 2:  # ingest removed damaged shards: look again
+                plans = shard_plans(study, workdir)
+            extra_args = [*_force_ingest_if_records_missing(study, workdir), *extra]
+            code, log = _call(snakemake_command(study_file, workdir, cores, extra_args), study, workdir,
+                              pending_jobs(study, workdir, plans), verbose)
             if code == 0:
                 return 0
             if marker.exists() and attempt == 1:
@@ -220,7 +218,7 @@ def run_study(study: Study, study_file: Path, workdir: Path, cores: int, extra: 
     return code
 
 
-def _force_if_shards_missing(study: Study, workdir: Path) -> list[str]:
+def _force_ingest_if_records_missing(study: Study, workdir: Path) -> list[str]:
     """Snakemake does not rebuild a missing intermediate file while the files made
     from it are present and newer, so a removed job record would never come back:
     when the store exists and a record is missing, force the ingest rule, which needs it."""
@@ -230,13 +228,13 @@ def _force_if_shards_missing(study: Study, workdir: Path) -> list[str]:
     return []
 
 
-def _call(cmd: list[str], study: Study, workdir: Path, verbose: bool) -> tuple[int, Path | None]:
+def _call(cmd: list[str], study: Study, workdir: Path, pending: dict, verbose: bool) -> tuple[int, Path | None]:
     """Run Snakemake: with its output on the terminal, or into a log under a progress line."""
     if verbose:
         return subprocess.call(cmd, cwd=workdir), None
     logs = results_dir(study.name, workdir) / "logs"
     logs.mkdir(parents=True, exist_ok=True)
     log = logs / f"snakemake-{time.strftime('%Y%m%dT%H%M%S')}.log"
-    with open(log, "w") as fh, Progress(study, workdir).shown():
+    with open(log, "w") as fh, Progress(study, workdir, pending).shown():
         code = subprocess.call(cmd, cwd=workdir, stdout=fh, stderr=subprocess.STDOUT)
     return code, log

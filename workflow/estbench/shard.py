@@ -55,6 +55,8 @@ METADATA_KEY = b"estbench"
 #: Rows per Parquet row group: large enough for fast scans, small enough to stream.
 ROW_GROUP_ROWS = 65_536
 UP_TO_DATE = "up to date"
+MISSING = "missing"
+DAMAGED = "damaged: "  #: prefix of the reason, followed by what is wrong
 
 
 def versions() -> dict:
@@ -120,11 +122,11 @@ def shard_state(path: Path | str, spec: Mapping, code: str) -> ShardState:
     """Compare the shard at *path* with the *spec* and estimator *code* hash it must have."""
     path = Path(path)
     if not path.exists():
-        return ShardState("missing")
+        return ShardState(MISSING)
     try:
         meta = verify_shard(path, full=False)
     except ShardProblem as exc:
-        return ShardState(f"damaged: {exc}")
+        return ShardState(f"{DAMAGED}{exc}")
     if meta.get("code_hash") != code:
         return ShardState("estimator code changed")
     if meta.get("spec_hash") != spec_hash(spec) or meta["first_block"] != spec["first_block"]:
@@ -136,7 +138,7 @@ def shard_state(path: Path | str, spec: Mapping, code: str) -> ShardState:
     try:
         verify_shard(path)  # its blocks are copied: every page must be sound
     except ShardProblem as exc:
-        return ShardState(f"damaged: {exc}")
+        return ShardState(f"{DAMAGED}{exc}")
     return ShardState("more blocks" if len(new) > len(old) else "fewer blocks",
                       keep=frozenset(old).intersection(new))
 
@@ -187,7 +189,7 @@ def shard_tasks(job: Mapping, search_dirs, outputs: Mapping[str, Path] | None = 
         function = spec["estimator"]["function"]
         code = codes[function] if codes else estimator_code_hash(function, search_dirs)
         out = Path(outputs[spec["estimator"]["name"]]) if outputs else None
-        state = shard_state(out, spec, code) if out else ShardState("missing")
+        state = shard_state(out, spec, code) if out else ShardState(MISSING)
         tasks.append(ShardTask(spec, plugins.resolve(function, search_dirs), code, out, state))
     return tasks
 
