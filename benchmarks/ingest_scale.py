@@ -4,7 +4,7 @@
 
 For each size it writes the synthetic shards of ``report_scale.py`` (20
 scenarios x 5 estimators; invented numbers) and runs the workflow's ingest step,
-``python -m estbench.store``, in a fresh process, recording its wall time and
+``python -m estbench.analyse.store``, in a fresh process, recording its wall time and
 peak resident memory (VmHWM). Ingest streams the Parquet row groups into DuckDB,
 so its memory must stay flat while the rows grow a hundredfold. The 10^8 row
 needs about 4 GB of shards and 3 GB of store on disk.
@@ -26,7 +26,7 @@ from report_scale import write_shards  # noqa: E402
 
 _CHILD = """
 import json, sys, time
-from estbench.store import main
+from estbench.analyse.store import main
 start = time.perf_counter()
 code = main(["--study", sys.argv[1], "--store", sys.argv[2]])
 seconds = time.perf_counter() - start

@@ -38,11 +38,11 @@ import yaml
 ROOT = Path(__file__).resolve().parents[1]
 sys.path[:0] = [str(ROOT / "workflow"), str(ROOT / "estimators")]
 
-from estbench.dgms import build_dgm  # noqa: E402
-from estbench.plugins import resolve, search_path  # noqa: E402
-from estbench.runner import snakemake_base  # noqa: E402
-from estbench.seeding import block_generator  # noqa: E402
-from estbench.study import study_from_mapping  # noqa: E402
+from estbench.simulate.dgms import build_dgm  # noqa: E402
+from estbench.simulate.plugins import resolve, search_path  # noqa: E402
+from estbench.app.runner import snakemake_base  # noqa: E402
+from estbench.simulate.seeding import block_generator  # noqa: E402
+from estbench.study.load import study_from_mapping  # noqa: E402
 
 SAMPLE_SIZES = [10, 20, 50, 100, 200, 500, 1000]
 ESTIMATORS = {
@@ -107,7 +107,7 @@ def time_estbench(raw: dict, cores: int) -> dict:
         path = Path(tmp) / "study.yaml"
         path.write_text(yaml.safe_dump(raw, sort_keys=False))
         start = time.perf_counter()
-        subprocess.run([sys.executable, "-m", "estbench.cli", "run", str(path), "--cores", str(cores)],
+        subprocess.run([sys.executable, "-m", "estbench.app.cli", "run", str(path), "--cores", str(cores)],
                        cwd=tmp, check=True, capture_output=True)
         seconds = time.perf_counter() - start
         out = Path(tmp) / "results" / raw["study"]

@@ -3,7 +3,7 @@
 Builds a store of 20 scenarios (4 DGMs x 5 sample sizes) x 5 estimators x
 10^5 replicates = 10^7 estimate rows, each with an SE, an interval and a
 p-value, through the real ingest path (Parquet shards with provenance ->
-``estbench.store.ingest``). The estimates are synthesised (normal errors with
+``estbench.analyse.store.ingest``). The estimates are synthesised (normal errors with
 each estimator's own spread, a few failures with messages), not computed by
 the estimators: this measures the report, not the simulation. Then it runs
 ``estbench.report.render`` in a fresh process and prints its wall time and
@@ -31,10 +31,9 @@ import pyarrow as pa
 import yaml
 from scipy import stats
 
-from estbench.paths import shard_path
-from estbench.shard import SHARD_SCHEMA, versions, write_atomic
-from estbench.store import ingest
-from estbench.study import study_from_mapping
+from estbench.simulate.shard import SHARD_SCHEMA, versions, write_atomic
+from estbench.analyse.store import ingest
+from estbench.study.load import study_from_mapping
 
 #: Spread of each synthetic estimator relative to the mean's, and its bias in SDs.
 ESTIMATORS = {"mean": (1.00, 0.0), "median": (1.25, 0.0), "trimmed_10": (1.03, 0.0),
@@ -95,7 +94,7 @@ def write_shards(folder: Path, reps: int):
     shards = []
     for s in study.scenarios:
         for e in study.estimators:
-            out = shard_path(study.name, s.key, e, 0, folder)
+            out = study.layout(folder).shard(s.key, e, 0)
             write_atomic(synthetic_shard(study, s, e, rng), out, {
                 "seed": str(study.seed), "scenario": s.key, "scenario_spawn_key": str(s.spawn_key),
                 "estimator": e, "function": study.estimators[e].function, "code_hash": "synthetic",
@@ -130,7 +129,8 @@ def reuse(folder: Path, reps: int) -> tuple[Path, int] | None:
 
 _CHILD = """
 import json, resource, sys, time
-import estbench.report
+from estbench.core.layout import ResultsLayout
+from estbench.report.render import render
 
 def high_water_kib():
     # VmHWM: this process's peak resident set. (ru_maxrss would also count
@@ -146,7 +146,7 @@ def cpu_seconds():
 
 before, cpu = high_water_kib(), cpu_seconds()
 start = time.perf_counter()
-estbench.report.render(sys.argv[1], sys.argv[2], sys.argv[3])
+render(ResultsLayout.of_store(sys.argv[1]))  # writes report.html and the CSVs beside the store
 seconds = time.perf_counter() - start
 print(json.dumps({"seconds": seconds, "cpu": cpu_seconds() - cpu, "rss_before_kib": before,
                   "rss_peak_kib": high_water_kib()}))
@@ -155,8 +155,7 @@ print(json.dumps({"seconds": seconds, "cpu": cpu_seconds() - cpu, "rss_before_ki
 
 def time_render(store: Path, folder: Path) -> dict:
     """Render in a fresh process (imports done before the clock starts)."""
-    proc = subprocess.run([sys.executable, "-c", _CHILD, str(store), str(folder / "report.html"),
-                           str(folder / "performance.csv")], capture_output=True, text=True, check=True)
+    proc = subprocess.run([sys.executable, "-c", _CHILD, str(store)], capture_output=True, text=True, check=True)
     return json.loads(proc.stdout.strip().splitlines()[-1])
 
 

@@ -89,7 +89,7 @@ def killed_work(cmd, cwd, stop_when) -> float:
 
 
 def estbench(*args) -> list[str]:
-    return [sys.executable, "-m", "estbench.cli", *map(str, args)]
+    return [sys.executable, "-m", "estbench.app.cli", *map(str, args)]
 
 
 def main() -> None:
@@ -116,8 +116,8 @@ def main() -> None:
         (plain / "study.yaml").write_text(yaml.safe_dump(grown, sort_keys=False))
         added = cpu_of(estbench("run", "study.yaml", "--cores", "2"), plain)
         own = float(subprocess.run(
-            estbench("query", "SELECT sum(seconds) FROM provenance p JOIN shards s USING (path) "
-                     "WHERE s.estimator = 'huber'", "--study", "study.yaml"),
+            estbench("query", "study.yaml", "SELECT sum(seconds) FROM provenance p JOIN shards s USING (path) "
+                     "WHERE s.estimator = 'huber'"),
             cwd=plain, capture_output=True, text=True, check=True).stdout.splitlines()[1])
         report = cpu_of(estbench("report", "study.yaml"), plain)
 

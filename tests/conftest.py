@@ -47,7 +47,7 @@ def run_cli(*args, cwd: Path, check: bool = False, timeout: float = 600) -> subp
     On a timeout the whole process group goes (estbench and the Snakemake it
     started), so no orphan keeps polling a cluster after the test.
     """
-    child = subprocess.Popen([sys.executable, "-m", "estbench.cli", *map(str, args)], cwd=cwd,
+    child = subprocess.Popen([sys.executable, "-m", "estbench.app.cli", *map(str, args)], cwd=cwd,
                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                              start_new_session=True)
     try:

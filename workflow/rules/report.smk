@@ -2,12 +2,15 @@
 rule report:
     input:
         store=STORE,
-        templates=[str(paths.REPORT_TEMPLATES / "report.html.j2"), str(paths.REPORT_TEMPLATES / "report.css")],
+        templates=sorted(str(p) for p in bundled.REPORT_TEMPLATES.rglob("*") if p.suffix in (".j2", ".css")),
     output:
         html=REPORT_HTML,
         csv=PERFORMANCE_CSV,
+        checks=CHECKS_CSV,
     log:
-        f"{RESULTS}/logs/report.log",
+        str(LAYOUT.stage_log("report")),
+    params:
+        python=PYTHON,
     threads: 2  # figures are drawn in parallel
     shell:
-        "{PYTHON} -m estbench.report --store {input.store:q} --html {output.html:q} --csv {output.csv:q} 2> {log:q}"
+        "{params.python} -m estbench.report.render --store {input.store:q} 2> {log:q}"

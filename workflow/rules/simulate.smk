@@ -6,15 +6,17 @@ rule simulate:
     input:
         code=ESTIMATOR_SOURCES,
     output:
-        f"{RESULTS}/jobs/{{scenario}}/{{first_block}}.json",
+        str(LAYOUT.job_record("{scenario}", "{first_block}")),
     params:
         spec=lambda w: jobs.job_spec_json(STUDY, w.scenario, int(w.first_block)),
+        python=PYTHON,
+        search=SEARCH_ARGS,
     priority: lambda w: jobs.job_values(STUDY, w.scenario, int(w.first_block))
     log:
-        f"{RESULTS}/logs/jobs/{{scenario}}/{{first_block}}.log",
+        str(LAYOUT.job_log("{scenario}", "{first_block}")),
     resources:
         mem_mb=1000,
         runtime=60,
     shell:
-        "{PYTHON} -m estbench.shard --spec {params.spec:q} {SEARCH_ARGS} --results {RESULTS:q} "
+        "{params.python} -m estbench.simulate.job --spec {params.spec:q} {params.search} "
         "--record {output:q} 2> {log:q}"

@@ -7,6 +7,8 @@ rule ingest:
     output:
         update(STORE),
     log:
-        f"{RESULTS}/logs/ingest.log",
+        str(LAYOUT.stage_log("ingest")),
+    params:
+        python=PYTHON,
     shell:
-        "{PYTHON} -m estbench.store --study {input.study:q} --store {output:q} 2> {log:q}"
+        "{params.python} -m estbench.analyse.store --study {input.study:q} --store {output:q} 2> {log:q}"

@@ -1,0 +1,276 @@
+"""One simulation job: a scenario x range of seed blocks -> one Parquet shard per estimator.
+
+The job spec is plain JSON (built by ``estbench.study.jobs.job_spec``), so a
+job needs neither the study file nor Snakemake::
+
+    python -m estbench.simulate.job --spec JSON --search-dir D --record results/<study>/jobs/<scenario>/<first_block>.json
+
+Each seed block is drawn once and handed to every estimator whose shard needs
+it: comparisons stay paired and the draw is paid once. A shard already made by
+the same spec and code is left untouched (bytes and mtime); one whose range
+grew keeps the blocks it has. Shards are streamed to temporary files a row
+group at a time, so memory does not grow with the replicate count, and moved
+into place with ``os.replace``. The job record is written last: a killed job
+leaves neither a partial shard nor a record of work it did not finish.
+
+This is the process every simulation job starts: it imports numpy, scipy and
+pyarrow, never duckdb, matplotlib or pandas (a test checks).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import resource
+import sys
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Iterable, Iterator, Mapping
+
+import pyarrow as pa
+
+from estbench.core.errors import UserError, entry_point
+from estbench.core.files import write_text_atomically
+from estbench.core.layout import ResultsLayout
+from estbench.simulate import plugins
+from estbench.simulate.dgms import build_dgm
+from estbench.simulate.estimator import apply_to_block
+from estbench.simulate.seeding import block_generator, estimator_generator
+from estbench.simulate.shard import (MISSING, ShardState, ShardWriter, block_table, estimator_code_hash,
+                                     read_block, read_metadata, shard_state, spec_hash, versions)
+
+#: Keys a job shares with each of its per-estimator shard specs.
+COMMON_KEYS = ("seed", "block_size", "first_block", "n_blocks", "scenario")
+
+
+def estimator_specs(job: Mapping) -> list[dict]:
+    """The spec of each shard of a job: the job's common part plus one estimator.
+
+    A shard's spec decides its numbers, so its hash tells whether an existing
+    shard still stands.
+    """
+    common = {k: job[k] for k in COMMON_KEYS}
+    return [{**common, **entry} for entry in job["estimators"]]
+
+
+def job_of(specs: Iterable[Mapping]) -> dict:
+    """The job computing the given shard specs (which must share scenario and blocks)."""
+    specs = list(specs)
+    common = {k: specs[0][k] for k in COMMON_KEYS}
+    if any({k: s[k] for k in COMMON_KEYS} != common for s in specs):
+        raise ValueError("shard specs of one job must share seed, block size, blocks and scenario")
+    return {**common, "estimators": [{k: v for k, v in s.items() if k not in COMMON_KEYS} for s in specs]}
+
+
+def shards_of_job(layout: ResultsLayout, job: Mapping) -> dict[str, Path]:
+    """Estimator name -> shard path of every shard a job writes."""
+    key, first = job["scenario"]["key"], job["first_block"]
+    return {e["estimator"]["name"]: layout.shard(key, e["estimator"]["name"], first) for e in job["estimators"]}
+
+
+@dataclass
+class ShardTask:
+    """One estimator's part of a job: its spec, callable, code hash and shard."""
+
+    spec: dict
+    fn: Callable
+    code: str
+    out: Path | None
+    state: ShardState
+    seconds: float = 0.0
+
+    def __post_init__(self):
+        self.takes_level = plugins.accepts(self.fn, "level")
+        self.takes_rng = plugins.accepts(self.fn, "rng")
+
+    @property
+    def name(self) -> str:
+        return self.spec["estimator"]["name"]
+
+    def kwargs(self, block: int) -> dict:
+        """Keyword arguments of the estimator on *block*: its args, level and own stream."""
+        kwargs = dict(self.spec["estimator"].get("args", {}))
+        if self.takes_level:
+            kwargs["level"] = self.spec["level"]
+        if self.takes_rng:
+            scen = self.spec["scenario"]
+            kwargs["rng"] = estimator_generator(self.spec["seed"], scen["spawn_key"], block, self.name)
+        return kwargs
+
+
+def shard_tasks(job: Mapping, search_dirs, outputs: Mapping[str, Path] | None = None,
+                codes: Mapping[str, str] | None = None) -> list[ShardTask]:
+    """The job's shards, each with the state of its existing file in *outputs* (if any).
+
+    *codes* maps estimator functions to their code hash, if already computed.
+    """
+    tasks = []
+    for spec in estimator_specs(job):
+        function = spec["estimator"]["function"]
+        code = codes[function] if codes else estimator_code_hash(function, search_dirs)
+        out = Path(outputs[spec["estimator"]["name"]]) if outputs else None
+        state = shard_state(out, spec, code) if out else ShardState(MISSING)
+        tasks.append(ShardTask(spec, plugins.resolve(function, search_dirs), code, out, state))
+    return tasks
+
+
+def iter_block_tables(job: Mapping, search_dirs, tasks: list[ShardTask],
+                      timing: dict | None = None) -> Iterator[tuple[ShardTask, pa.Table]]:
+    """(task, rows of one block) for every block of the job and every task, in block order.
+
+    A block is drawn once, and only if some task needs it computed; blocks a
+    task keeps are copied from its existing shard.
+    """
+    scen, seed, reps = job["scenario"], job["seed"], job["block_size"]
+    dgm = build_dgm(scen["dgm"], tuple(search_dirs), seed)
+    timing = {} if timing is None else timing
+    timing.setdefault("draw", 0.0)
+    for block in range(job["first_block"], job["first_block"] + job["n_blocks"]):
+        data = None
+        for task in tasks:
+            if block in task.state.keep:
+                yield task, read_block(task.out, block)
+                continue
+            if data is None:
+                start = time.perf_counter()
+                data = dgm.draw(block_generator(seed, scen["spawn_key"], block), reps, scen["n"])
+                timing["draw"] += time.perf_counter() - start
+            start = time.perf_counter()
+            result = apply_to_block(task.fn, data, reps, task.kwargs(block))
+            table = block_table(scen["key"], task.name, block, reps, result)
+            task.seconds += time.perf_counter() - start
+            yield task, table
+
+
+def compute_shard(spec: Mapping, search_dirs) -> pa.Table:
+    """The rows of one shard, computed in memory (for tests and notebooks)."""
+    job = job_of([spec])
+    return pa.concat_tables([t for _, t in iter_block_tables(job, search_dirs, shard_tasks(job, search_dirs))])
+
+
+def _max_rss_mb() -> float:
+    return round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1)
+
+
+def shard_metadata(task: ShardTask, rows: int, seconds: float) -> dict:
+    """Provenance a shard carries in its footer."""
+    spec, scen = task.spec, task.spec["scenario"]
+    return {
+        "spec_hash": spec_hash(spec),
+        "reused_blocks": len(task.state.keep),
+        "seed": str(spec["seed"]),
+        "scenario": scen["key"],
+        "scenario_spawn_key": str(scen["spawn_key"]),  # block b uses spawn_key=(this, b)
+        "estimator": task.name,
+        "function": spec["estimator"]["function"],
+        "code_hash": task.code,
+        "first_block": spec["first_block"],
+        "n_blocks": spec["n_blocks"],
+        "block_size": spec["block_size"],
+        "rows": rows,
+        "versions": versions(),
+        "seconds": round(seconds, 6),
+        "max_rss_mb": _max_rss_mb(),
+        "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+    }
+
+
+def run_job(job: Mapping, search_dirs, outputs: Mapping[str, Path]) -> dict:
+    """Bring every shard of *job* (estimator name -> path in *outputs*) up to date.
+
+    Shards that are up to date are not touched. Returns the job record: what
+    was done to each shard and why, and the time spent drawing and estimating.
+    """
+    start = time.perf_counter()
+    tasks = shard_tasks(job, search_dirs, outputs)
+    todo = [t for t in tasks if not t.state.current]
+    timing = {"draw": 0.0}
+    writers = {t.name: ShardWriter(t.out) for t in todo}
+    try:
+        if todo:
+            for task, table in iter_block_tables(job, search_dirs, todo, timing):
+                writers[task.name].write(table)
+            # Each shard is charged its own estimator time plus an even share of the draw.
+            draw_share = timing["draw"] / len(todo)
+            for task in todo:
+                writer = writers[task.name]
+                writer.commit(shard_metadata(task, writer.total_rows, task.seconds + draw_share))
+    finally:
+        for writer in writers.values():
+            writer.discard()
+    return {
+        "scenario": job["scenario"]["key"],
+        "first_block": job["first_block"],
+        "n_blocks": job["n_blocks"],
+        "block_size": job["block_size"],
+        "shards": {t.name: {"path": str(t.out), "action": "kept" if t.state.current else "computed",
+                            "reason": t.state.reason, "reused_blocks": len(t.state.keep),
+                            "estimator_seconds": round(t.seconds, 6)} for t in tasks},
+        "draw_seconds": round(timing["draw"], 6),
+        "seconds": round(time.perf_counter() - start, 6),
+        "max_rss_mb": _max_rss_mb(),
+        "versions": versions(),
+        "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+    }
+
+
+def run_shard(spec: Mapping, search_dirs, out: Path) -> dict:
+    """Bring one shard up to date on its own (a job of one estimator); return its provenance."""
+    run_job(job_of([spec]), search_dirs, {spec["estimator"]["name"]: out})
+    return read_metadata(out)
+
+
+def write_record(record: Mapping, path: Path | str) -> None:
+    """Write the job record atomically."""
+    write_text_atomically(path, json.dumps(record, indent=1, sort_keys=True) + "\n")
+
+
+def _job_from_json(text: str) -> dict:
+    try:
+        job = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise UserError(f"`--spec`: must be a job spec in JSON, got invalid JSON ({exc})") from None
+    missing = [k for k in (*COMMON_KEYS, "estimators") if not isinstance(job, dict) or k not in job]
+    if missing:
+        raise UserError(f"`--spec`: a job spec needs the keys {', '.join(missing)}")
+    return job
+
+
+@entry_point
+def main(argv=None) -> int:
+    """``python -m estbench.simulate.job``: run one job and write its record."""
+    parser = argparse.ArgumentParser(prog="python -m estbench.simulate.job",
+                                     description="Run one simulation job (used by the workflow).")
+    parser.add_argument("--spec", required=True, help="job spec as JSON")
+    parser.add_argument("--search-dir", action="append", default=[],
+                        help="folder searched for estimator modules (repeatable)")
+    parser.add_argument("--record", required=True, type=Path,
+                        help="the job record to write last (results/<study>/jobs/<scenario>/<first_block>.json)")
+    args = parser.parse_args(argv)
+    job = _job_from_json(args.spec)
+    try:
+        layout = ResultsLayout.of_job_record(args.record)
+    except ValueError as exc:
+        raise UserError(f"`--record`: {exc}") from None
+    path = layout.job_record(job["scenario"]["key"], job["first_block"])
+    if path != args.record:
+        raise UserError(f"`--record`: the job of scenario {job['scenario']['key']} from block "
+                        f"{job['first_block']} writes {path}, not {args.record}")
+    for entry in job["estimators"]:  # a module gone or broken since the study was checked
+        name, function = entry["estimator"]["name"], entry["estimator"]["function"]
+        try:
+            plugins.resolve(function, args.search_dir)
+        except (ImportError, AttributeError, TypeError) as exc:
+            raise UserError(f"`estimators.{name}.function`: cannot use {function!r}: {exc}") from None
+    record = run_job(job, args.search_dir, shards_of_job(layout, job))
+    write_record(record, path)
+    done = [f"{name} ({s['reason']})" for name, s in record["shards"].items() if s["action"] == "computed"]
+    kept = [name for name, s in record["shards"].items() if s["action"] == "kept"]
+    print(f"{path}: computed {', '.join(done) or 'nothing'}; kept {', '.join(kept) or 'nothing'}; "
+          f"{record['n_blocks'] * record['block_size']} replicates in {record['seconds']:.2f} s", file=sys.stderr)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,2 @@
+"""Stage 2, study: read and check the study file, the scenario grid and the jobs
+the workflow runs. Imports ``core`` and ``simulate``."""

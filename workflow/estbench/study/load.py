@@ -1,0 +1,45 @@
+"""Load a study file: schema first, then meaning, every problem at once, then the ``Study``."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any, Mapping
+
+from estbench.core.errors import StudyError
+from estbench.study.checks import semantic_problems
+from estbench.study.model import EstimatorSpec, Study
+from estbench.study.schema import read_yaml, schema_problems
+
+
+def study_from_mapping(raw: Any, source: Path | None = None) -> Study:
+    """Validate *raw* (schema, then semantics) and build a ``Study``.
+
+    Raises ``StudyError`` listing every problem found.
+    """
+    if not isinstance(raw, Mapping):
+        raise StudyError(f"`(top level)`: the study must be a mapping of keys, got {type(raw).__name__}",
+                         source)
+    problems = schema_problems(raw)
+    if problems:
+        raise StudyError(problems, source)
+    base_dir = source.parent if source else None
+    problems = semantic_problems(raw, base_dir)
+    if problems:
+        raise StudyError(problems, source)
+    estimators = {name: EstimatorSpec(name, e["function"], e["target"], dict(e.get("args", {})),
+                                      e.get("description", ""))
+                  for name, e in raw["estimators"].items()}
+    return Study(
+        name=raw["study"], description=raw.get("description", ""), seed=int(raw["seed"]),
+        replicates=int(raw["replicates"]), block_size=int(raw.get("block_size", 1000)),
+        blocks_per_job=None if raw.get("blocks_per_job", "auto") == "auto" else int(raw["blocks_per_job"]), level=float(raw.get("level", 0.95)),
+        sample_sizes=tuple(int(n) for n in raw["sample_sizes"]), dgms=dict(raw["dgms"]),
+        estimators=estimators, reference=raw.get("reference"),
+        targets=dict(raw.get("targets", {})), report=dict(raw.get("report", {})),
+        source=source, raw=raw)
+
+
+def load_study(path: Path | str) -> Study:
+    """Read, validate and build the study in the YAML file at *path*."""
+    path = Path(path).resolve()
+    return study_from_mapping(read_yaml(path), source=path)
