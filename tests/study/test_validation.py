@@ -125,3 +125,12 @@ def test_report_options_must_name_what_the_study_has(tmp_path):
     ok = tiny_study(report={"tolerance": 0.25, "zip": {"dgm": "normal", "n": 20},
                             "asymptotic_efficiency": {"median": {"normal": 0.6366}}})
     assert run_cli("check", write_study(tmp_path, ok), cwd=tmp_path).returncode == 0
+
+
+@pytest.mark.parametrize("cores", ["0", "-1"])
+def test_run_refuses_cores_below_one(tmp_path, cores):
+    path = write_study(tmp_path, tiny_study())
+    proc = run_cli("run", path, "--cores", cores, cwd=tmp_path, timeout=60)
+    assert proc.returncode == 2
+    assert proc.stderr.strip() == f"estbench: `--cores` must be a positive integer, got {cores}"
+    assert not (tmp_path / "results").exists()

@@ -61,6 +61,8 @@ def cmd_run(args) -> int:
     from estbench.app.precision import run_until_precise
     from estbench.app.runner import run_study
     from estbench.study.allocation import with_allocation
+    if args.cores < 1:
+        raise UserError(f"`--cores` must be a positive integer, got {args.cores}")
     study = _load(args)
 
     extra = [*_profile_args(args.profile), *args.snakemake_args]
@@ -250,8 +252,8 @@ def build_parser() -> argparse.ArgumentParser:
           "blocks, damaged), and count the replicates already in the store.")
     p = _verb(sub, "plan", cmd_plan, "replicates needed to meet the MCSE targets",
               "For every scenario x estimator x targeted measure: the MCSE so far, the target and "
-              "the replicates needed (n_sim = Var/MCSE^2; for a share such as coverage "
-              "C(1-C)/MCSE^2). Before any run, the worst case.")
+              "the replicates needed (n_sim = Var/target^2; for a share such as coverage "
+              "C(1-C)/target^2). Before any run, the worst case.")
     p.add_argument("--sd", type=float, default=None,
                    help="before any run: a guess of the SD of the estimates, for bias/empirical_se/mse/rmse targets")
     _verb(sub, "report", cmd_report, "re-render report.html and the CSVs from the store",
