@@ -26,3 +26,24 @@ def test_every_example_study_is_valid():
     for path in sorted(EXAMPLE_STUDIES.glob("*.yaml")):
         proc = run_cli("check", path, cwd=path.parent)
         assert proc.returncode == 0, f"{path.name}: {proc.stderr}"
+
+
+def test_scaffold_test_passes_for_an_estimator_returning_a_plain_array(tmp_path):
+    """The contract allows returning estimates alone (README, "Adding an estimator")."""
+    run_cli("new", "estimator", "plot_mean", "--dir", tmp_path, cwd=tmp_path, check=True)
+    module = tmp_path / "plot_mean.py"
+    text = module.read_text()
+    body = text[:text.index("    x = np.asarray(x, dtype=float)")] + "    return np.asarray(x, dtype=float).mean(axis=1)\n"
+    module.write_text(body)
+    tests = subprocess.run([sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider",
+                            "test_plot_mean.py"], cwd=tmp_path, capture_output=True, text=True)
+    assert tests.returncode == 0 and "2 passed" in tests.stdout, tests.stdout + tests.stderr
+
+
+def test_new_estimator_refuses_names_that_hide_other_modules(tmp_path):
+    builtin = run_cli("new", "estimator", "location", "--dir", tmp_path, cwd=tmp_path)
+    assert builtin.returncode == 2 and "would hide estbench's built-in estimator module location" in builtin.stderr
+    for name in ("json", "numpy"):   # the standard library, an installed package
+        proc = run_cli("new", "estimator", name, "--dir", tmp_path, cwd=tmp_path)
+        assert proc.returncode == 2 and "already an importable Python module" in proc.stderr
+    assert list(tmp_path.iterdir()) == []

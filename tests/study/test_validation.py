@@ -111,6 +111,10 @@ def test_check_summarises_a_valid_study(tmp_path):
     proc = run_cli("check", write_study(tmp_path, tiny_study()), cwd=tmp_path, check=True)
     assert "2 scenario(s), 2 estimator(s), 60 replicates per scenario (6 seed block(s) of 10), " \
            "4 simulation job(s), 8 shard(s)" in proc.stdout
+    assert "warning: each scenario has 6 seed block(s); the jackknife MCSEs (rmse, relative_mse) " \
+           "need at least 20" in proc.stderr
+    enough = run_cli("check", write_study(tmp_path, tiny_study(replicates=200)), cwd=tmp_path, check=True)
+    assert "warning" not in enough.stderr
 
 
 def test_report_options_must_name_what_the_study_has(tmp_path):

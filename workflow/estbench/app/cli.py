@@ -18,6 +18,10 @@ from estbench import __version__
 from estbench.app.locate import locate_study
 from estbench.core.errors import UserError, entry_point
 
+#: Seed blocks per scenario below which `check` warns that jackknife MCSEs are rough
+#: (K - 1 degrees of freedom; the README's advice of at least 20 is common practice).
+JACKKNIFE_MIN_BLOCKS = 20
+
 
 def _study_arg(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("study", nargs="?", type=Path, default=None,
@@ -41,6 +45,10 @@ def cmd_check(args) -> int:
           f"{len(study.estimators)} estimator(s), {study.replicates_run} replicates per scenario "
           f"({study.n_blocks} seed block(s) of {study.block_size}), {n_jobs} simulation job(s), "
           f"{n_jobs * len(study.estimators)} shard(s)")
+    if study.n_blocks < JACKKNIFE_MIN_BLOCKS:
+        print(f"estbench: warning: each scenario has {study.n_blocks} seed block(s); the jackknife MCSEs "
+              f"(rmse, relative_mse) need at least {JACKKNIFE_MIN_BLOCKS}: lower `block_size` or raise "
+              f"`replicates`", file=sys.stderr)
     return 0
 
 

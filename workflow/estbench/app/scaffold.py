@@ -3,9 +3,12 @@
 
 from __future__ import annotations
 
+import importlib.util
 import keyword
+import sys
 from pathlib import Path
 
+from estbench.core.bundled import BUILTIN_ESTIMATORS
 from estbench.core.errors import UserError
 
 ESTIMATOR_TEMPLATE = '''"""{name}: say what this estimator estimates and from which data.
@@ -57,11 +60,19 @@ import numpy as np
 from {name} import {name}
 
 
+def outputs(x):
+    """{name}'s result as a dict, whichever form it returns (an array means estimates only)."""
+    out = {name}(x)
+    return out if isinstance(out, dict) else {{"estimate": np.asarray(out)}}
+
+
 def test_one_value_per_replicate():
     x = np.random.default_rng(1).normal(size=(50, 12))
-    out = {name}(x)
-    assert out["estimate"].shape == (50,)
-    assert np.all(out["ci_low"] <= out["ci_high"])
+    out = outputs(x)
+    for values in out.values():
+        assert np.shape(values) == (50,)
+    if "ci_low" in out and "ci_high" in out:
+        assert np.all(out["ci_low"] <= out["ci_high"])
 
 
 def test_against_a_known_answer():
@@ -69,7 +80,7 @@ def test_against_a_known_answer():
     # published worked example or a reference library, and name the source here.
     # The starting point is the sample mean, so numpy's mean is the reference.
     x = np.random.default_rng(2).normal(size=(5, 8))
-    np.testing.assert_allclose({name}(x)["estimate"], np.mean(x, axis=1), rtol=1e-12)
+    np.testing.assert_allclose(outputs(x)["estimate"], np.mean(x, axis=1), rtol=1e-12)
 '''
 
 
@@ -204,11 +215,25 @@ def _check_name(name: str) -> None:
                         f"a digit), got {name!r}")
 
 
-def _write_new(files: dict[Path, str]) -> list[Path]:
-    """Write every file, refusing before writing any if one of them exists."""
+def _check_hides_nothing(name: str) -> None:
+    """A new module *name* must not hide a module a study may need."""
+    if (BUILTIN_ESTIMATORS / f"{name}.py").is_file():
+        raise UserError(f"`NAME`: {name!r} would hide estbench's built-in estimator module {name} "
+                        f"(used as \"{name}:...\" in studies); choose another name")
+    if name in sys.stdlib_module_names or importlib.util.find_spec(name) is not None:
+        raise UserError(f"`NAME`: {name!r} is already an importable Python module, which a module of "
+                        f"that name beside the study would hide; choose another name")
+
+
+def _refuse_existing(files) -> None:
     for path in files:
         if path.exists():
             raise UserError(f"{path} already exists; move it away or choose another folder")
+
+
+def _write_new(files: dict[Path, str]) -> list[Path]:
+    """Write every file, refusing before writing any if one of them exists."""
+    _refuse_existing(files)
     for path, text in files.items():
         path.parent.mkdir(parents=True, exist_ok=True)
         path.write_text(text)
@@ -224,9 +249,11 @@ def new_estimator(name: str, folder: Path | None = None) -> list[Path]:
     folder = Path(folder)
     if not folder.is_dir():
         raise UserError(f"`--dir` must be an existing folder, got {str(folder)!r}")
-    test = folder / f"test_{name}.py"
-    return _write_new({folder / f"{name}.py": ESTIMATOR_TEMPLATE.format(name=name),
-                       test: TEST_TEMPLATE.format(name=name, test_file=test.name)})
+    module, test = folder / f"{name}.py", folder / f"test_{name}.py"
+    files = {module: ESTIMATOR_TEMPLATE.format(name=name), test: TEST_TEMPLATE.format(name=name, test_file=test.name)}
+    _refuse_existing(files)
+    _check_hides_nothing(name)
+    return _write_new(files)
 
 
 def new_project(folder: Path | str) -> list[Path]:
