@@ -21,6 +21,10 @@ from estbench.core.errors import UserError, entry_point
 #: Seed blocks per scenario below which `check` warns that jackknife MCSEs are rough
 #: (K - 1 degrees of freedom; the README's advice of at least 20 is common practice).
 JACKKNIFE_MIN_BLOCKS = 20
+#: Snakemake options after `--` that only show what would run.
+DRY_RUN_FLAGS = ("-n", "--dry-run", "--dryrun")
+#: Snakemake options after `--` that stop before the report.
+PARTIAL_RUN_FLAGS = ("--until", "-U", "--omit-from", "-O")
 
 
 def _study_arg(parser: argparse.ArgumentParser) -> None:
@@ -74,19 +78,31 @@ def cmd_run(args) -> int:
     study = _load(args)
 
     extra = [*_profile_args(args.profile), *args.snakemake_args]
+    dry_run = any(a in DRY_RUN_FLAGS for a in args.snakemake_args)
+    partial = any(a.split("=")[0] in PARTIAL_RUN_FLAGS for a in args.snakemake_args)
+    if dry_run and args.until_precise:
+        raise UserError("`--until-precise` needs real runs; leave out Snakemake's --dry-run")
 
     def run(s):
-        return run_study(s, args.study, Path.cwd(), args.cores, extra, args.verbose)
+        # a dry run's whole point is Snakemake's list of jobs and reasons: show it
+        return run_study(s, args.study, Path.cwd(), args.cores, extra, args.verbose or dry_run)
 
     if args.until_precise:
         code = run_until_precise(study, run, args.max_replicates, Path.cwd(),
                                  say=lambda text: print(text, file=sys.stderr))
     else:
         code = run(with_allocation(study))
-    if code == 0:
-        layout = study.layout()
+    if code != 0:
+        return 1
+    layout = study.layout()
+    if dry_run:
+        print("estbench: dry run: the jobs above are what a run would do; nothing was computed")
+    elif partial:
+        print(f"estbench: stopped where Snakemake was told to ({' '.join(args.snakemake_args)}); "
+              f"the report was not brought up to date: run again without it to finish")
+    else:
         print(f"estbench: done. Report: {layout.report_html}  Measures: {layout.performance_csv}")
-    return 0 if code == 0 else 1
+    return 0
 
 
 def cmd_status(args) -> int:
