@@ -138,3 +138,27 @@ def test_run_refuses_cores_below_one(tmp_path, cores):
     assert proc.returncode == 2
     assert proc.stderr.strip() == f"estbench: `--cores` must be a positive integer, got {cores}"
     assert not (tmp_path / "results").exists()
+
+
+def test_schema_and_meaning_problems_come_in_one_pass(tmp_path):
+    """A bad seed (schema), an unknown distribution and an unknown reference (meaning):
+    all three at once, not over three rounds of fixes."""
+    study = _bad(seed=-1, reference="zz", dgms={"plots": {"distribution": "normal", "params": {"loc": 1.0}}})
+    proc = run_cli("check", write_study(tmp_path, study), cwd=tmp_path)
+    assert proc.returncode == 2 and "has 3 problems" in proc.stderr, proc.stderr
+    for text in ("`seed`: must be >= 0, got -1",
+                 "`dgms.plots.distribution`: scipy.stats has no distribution 'normal'",
+                 "`reference`: 'zz' is not one of the estimators (mean, median)"):
+        assert text in proc.stderr
+
+
+def test_an_estimator_refused_by_the_schema_leaves_the_others_checked(tmp_path):
+    study = _bad(estimators={"mean": {"function": "location:mean"},                     # no target
+                             "ghost": {"function": "nosuchmodule:f", "target": "mean"}},
+                 reference="mean", level=3)
+    proc = run_cli("check", write_study(tmp_path, study), cwd=tmp_path)
+    assert "has 3 problems" in proc.stderr, proc.stderr
+    for text in ("`estimators.mean.target`: required key is missing", "`level`: must be < 1, got 3",
+                 "`estimators.ghost.function`: cannot use 'nosuchmodule:f'"):
+        assert text in proc.stderr
+    assert "`reference`" not in proc.stderr      # it names the estimator refused above

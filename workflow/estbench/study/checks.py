@@ -116,14 +116,50 @@ def _report_problems(raw: Mapping) -> list[str]:
     return problems
 
 
+#: What the meaning checks use in place of a top-level value the schema refused.
+_STAND_INS = {"seed": 0, "sample_sizes": [10], "level": 0.95}
+
+
+def checkable_part(raw: Mapping, bad_paths) -> dict:
+    """The part of *raw* the meaning checks can still examine when the schema refused
+    the keys at *bad_paths* (tuples of keys), so one pass reports every problem.
+
+    A refused DGM or estimator is left out; a refused value the checks need gets a
+    neutral stand-in; a reference or report options that could only repeat a
+    schema problem (naming what was left out, or sample sizes that were refused)
+    are dropped.
+    """
+    bad_top = {p[0] for p in bad_paths if p}
+    part = {k: v for k, v in raw.items() if k not in bad_top or k in ("dgms", "estimators")}
+    part.update({k: v for k, v in _STAND_INS.items() if k in bad_top or k not in part})
+    gone = set()
+    for section in ("dgms", "estimators"):
+        given = part.get(section)
+        given = given if isinstance(given, Mapping) and (section,) not in bad_paths else {}
+        bad = {p[1] for p in bad_paths if len(p) > 1 and p[0] == section}
+        part[section] = {name: spec for name, spec in given.items() if name not in bad}
+        gone |= set(raw.get(section) or {}) - set(part[section]) if isinstance(raw.get(section), Mapping) else set()
+    if part.get("reference") in gone:
+        part.pop("reference")
+    if gone or "sample_sizes" in bad_top:
+        part.pop("report", None)
+    return part
+
+
 def semantic_problems(raw: Mapping, base_dir: Path | None) -> list[str]:
-    """Problems the schema cannot see: names and parameters, imports, targets, trial runs."""
+    """Problems the schema cannot see: names and parameters, imports, targets, trial runs.
+
+    A DGM with a problem of its own is left out of the checks that draw from it,
+    so the estimators are still checked on the others.
+    """
     dirs = plugins.search_path(base_dir)
-    problems = []
+    problems, usable = [], {}
     for name, spec in raw.get("dgms", {}).items():
-        problems += spec_problems(name, spec, dirs)
-    if problems:
-        return sorted(set(problems))
+        found = spec_problems(name, spec, dirs)
+        problems += found
+        if not found:
+            usable[name] = spec
+    study_raw, raw = raw, {**raw, "dgms": usable}
     scenarios = expand_study(raw["dgms"], raw["sample_sizes"])
     seen: dict[str, Scenario] = {}
     for s in scenarios:
@@ -135,7 +171,7 @@ def semantic_problems(raw: Mapping, base_dir: Path | None) -> list[str]:
         problems += _estimator_problems(raw, scenarios, dirs, int(raw["seed"]))
     except Exception as exc:  # a user's truth function failing on some swept value
         problems.append(f"`dgms`: computing the true values failed: {short_message(exc)}")
-    problems += _report_problems(raw)
+    problems += _report_problems(study_raw)
     ref = raw.get("reference")
     if ref is not None and ref not in raw["estimators"]:
         problems.append(f"`reference`: {ref!r} is not one of the estimators "

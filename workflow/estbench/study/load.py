@@ -6,9 +6,9 @@ from pathlib import Path
 from typing import Any, Mapping
 
 from estbench.core.errors import StudyError
-from estbench.study.checks import semantic_problems
+from estbench.study.checks import checkable_part, semantic_problems
 from estbench.study.model import EstimatorSpec, Study
-from estbench.study.schema import read_yaml, schema_problems
+from estbench.study.schema import read_yaml, schema_errors
 
 
 def study_from_mapping(raw: Any, source: Path | None = None) -> Study:
@@ -19,13 +19,12 @@ def study_from_mapping(raw: Any, source: Path | None = None) -> Study:
     if not isinstance(raw, Mapping):
         raise StudyError(f"`(top level)`: the study must be a mapping of keys, got {type(raw).__name__}",
                          source)
-    problems = schema_problems(raw)
-    if problems:
-        raise StudyError(problems, source)
+    errors = schema_errors(raw)
     base_dir = source.parent if source else None
-    problems = semantic_problems(raw, base_dir)
+    problems = [text for _, text in errors]
+    problems += semantic_problems(checkable_part(raw, {path for path, _ in errors}), base_dir)
     if problems:
-        raise StudyError(problems, source)
+        raise StudyError(sorted(set(problems)), source)
     estimators = {name: EstimatorSpec(name, e["function"], e["target"], dict(e.get("args", {})),
                                       e.get("description", ""))
                   for name, e in raw["estimators"].items()}

@@ -88,24 +88,29 @@ def _rule_text(err: jsonschema.ValidationError) -> str:
     return err.message
 
 
-def schema_problems(raw: Any, schema: dict | None = None) -> list[str]:
-    """Every schema violation of *raw* as one line each, sorted by key path."""
+def schema_errors(raw: Any, schema: dict | None = None) -> list[tuple[tuple, str]]:
+    """Every schema violation of *raw*: (key path of the offending key, one-line problem)."""
     schema = schema or load_schema()
     validator = jsonschema.Draft202012Validator(schema)
-    problems = []
+    errors = []
     for err in validator.iter_errors(raw):
         path = list(err.absolute_path)
         if err.validator == "additionalProperties":
             allowed = set(err.schema.get("properties", {}))
             for extra in sorted(set(err.instance) - allowed):
                 hint = f"; allowed keys: {', '.join(sorted(allowed))}" if allowed else ""
-                problems.append(f"`{key_path(path + [extra])}`: unknown key{hint}")
+                errors.append((tuple(path + [extra]), f"`{key_path(path + [extra])}`: unknown key{hint}"))
         elif err.validator == "required":
             missing = err.message.split("'")[1]
-            problems.append(f"`{key_path(path + [missing])}`: required key is missing")
+            errors.append((tuple(path + [missing]), f"`{key_path(path + [missing])}`: required key is missing"))
         elif "propertyNames" in err.schema_path:
             rule = err.schema.get("x-rule", "is not an allowed name")
-            problems.append(f"`{key_path(path)}`: key {err.instance!r} {rule}")
+            errors.append((tuple(path + [err.instance]), f"`{key_path(path)}`: key {err.instance!r} {rule}"))
         else:
-            problems.append(f"`{key_path(path)}`: {_rule_text(err)}")
-    return sorted(set(problems))
+            errors.append((tuple(path), f"`{key_path(path)}`: {_rule_text(err)}"))
+    return errors
+
+
+def schema_problems(raw: Any, schema: dict | None = None) -> list[str]:
+    """Every schema violation of *raw* as one line each, sorted by key path."""
+    return sorted({text for _, text in schema_errors(raw, schema)})
