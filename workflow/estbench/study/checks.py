@@ -138,7 +138,8 @@ def checkable_part(raw: Mapping, bad_paths) -> dict:
         given = given if isinstance(given, Mapping) and (section,) not in bad_paths else {}
         bad = {p[1] for p in bad_paths if len(p) > 1 and p[0] == section}
         part[section] = {name: spec for name, spec in given.items() if name not in bad}
-        gone |= set(raw.get(section) or {}) - set(part[section]) if isinstance(raw.get(section), Mapping) else set()
+        if isinstance(raw.get(section), Mapping):
+            gone |= set(raw[section]) - set(part[section])
     if part.get("reference") in gone:
         part.pop("reference")
     if gone or "sample_sizes" in bad_top:
