@@ -84,6 +84,7 @@ def open_read_only(store: Path | str) -> duckdb.DuckDBPyConnection:
 #: Row order is not preserved, which no measure depends on.
 INGEST_SETTINGS = {"memory_limit": "256MB", "preserve_insertion_order": False}
 
+
 def _send_back(path: Path, problem: str) -> UserError:
     """Remove a bad or missing shard and its job's record, so the next run recomputes
     it; list it in the recompute marker; return the error to raise."""

@@ -21,6 +21,7 @@ from estbench.analyse.store import measure_options, open_read_only
 from estbench.study.allocation import save_allocation, with_allocation
 from estbench.study.model import Study
 
+
 def first_sufficient_blocks(study: Study, workdir: Path | str = ".") -> tuple[dict, dict]:
     """For each scenario, the smallest block count k >= the study's own at which every
     targeted MCSE is met, judged on blocks 0..k-1 in the store.

@@ -197,7 +197,6 @@ _COVERS = ("CASE WHEN {x}.lo IS NULL OR {x}.hi IS NULL THEN NULL "
            "WHEN {x}.lo <= $truth AND $truth <= {x}.hi THEN 1.0 ELSE 0.0 END")
 
 
-
 #: Per-replicate contribution of estimator {x} to each ranked measure (see
 #: ``report_stats.RANKINGS``); the paired difference is b's minus a's.
 _CONTRIBUTIONS = {

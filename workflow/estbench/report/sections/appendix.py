@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-
-
 from estbench.report import data as report_data
 from estbench.report.model import ReportModel
 from estbench.report.sections.base import SectionInputs

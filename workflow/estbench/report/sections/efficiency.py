@@ -3,8 +3,6 @@ Cramér–Rao bound, against n."""
 
 from __future__ import annotations
 
-
-
 from estbench.report import figures
 from estbench.report.figure_queue import FigureQueue
 from estbench.report.model import ReportModel
@@ -14,6 +12,7 @@ from estbench.report.sections.base import SectionInputs
 TITLE = "Efficiency"
 #: The name the template gives this section's content.
 KEY = "efficiency"
+
 
 def efficiency(model: ReportModel, queue: FigureQueue) -> list[dict]:
     known = model.options.get("asymptotic_efficiency") or {}

@@ -18,6 +18,7 @@ TITLE = "Study at a glance"
 #: The name the template gives this section's content.
 KEY = "glance"
 
+
 def _truth_text(model: ReportModel, family: Family) -> list[str]:
     """'mean = 10' per estimand the estimators target; several values if they vary with n."""
     out = []

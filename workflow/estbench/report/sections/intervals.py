@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-
-
 from estbench.report import data as report_data
 from estbench.report import figures
 from estbench.report.figure_queue import FigureQueue

@@ -3,8 +3,6 @@ the leader of each measure tested against the runner-up on paired replicates."""
 
 from __future__ import annotations
 
-
-
 from estbench.analyse.measures import MEASURES
 from estbench.report import data as report_data
 from estbench.report.model import Family, ReportModel
