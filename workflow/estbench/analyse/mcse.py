@@ -1,6 +1,6 @@
 """Monte Carlo error tools that work on per-block sums, with no database.
 
-Three jobs, each on arrays that SQL has already reduced to one row per seed
+Three jobs, each on arrays already reduced to one row per seed
 block (never one row per replicate):
 
 * the leave-one-block-out jackknife (Koehler, Brown & Haneuse 2009, "On the

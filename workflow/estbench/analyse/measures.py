@@ -58,13 +58,17 @@ is reported as 0.
 
 The seed-block jackknife (Koehler, Brown & Haneuse 2009, The American
 Statistician 63:155-162) leaves out one seed block at a time; every
-leave-one-out estimate comes from per-block sums taken in SQL, so it costs
-one grouped pass whatever the number of replicates. With K blocks it has
+leave-one-out estimate comes from the per-block sums, so it costs no
+further pass over the replicates. With K blocks it has
 K − 1 degrees of freedom (see :func:`estbench.mcse.jackknife_se`).
 
-All sums run in DuckDB: one grouped pass over the estimates, and one over
-the pairs with the reference; each groups by scenario x estimator and by
-seed block at once. numpy only combines those aggregates.
+Every sum is taken by :mod:`estbench.analyse.block_sums`: DuckDB streams the
+estimates sorted by seed block and replicate, numpy sums each seed block in
+replicate order and combines the blocks in block order. So every number here
+is a function of the set of estimates alone: the same to the last bit
+whatever the ingest order, sharding, thread count, interruptions or executor,
+and a comparison of two identical estimators gives relative efficiency and
+relative MSE of exactly 1 with MCSE 0, and differences of exactly 0 ± 0.
 """
 
 from __future__ import annotations
@@ -79,6 +83,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from estbench.analyse.block_sums import Sums, block_sums, centre_hits
 from estbench.analyse.mcse import (Blocks, block_heterogeneity, is_open_unit, is_positive_number, jackknife_se,
                    replicates_for_target, round_up)
 
@@ -193,7 +198,7 @@ def _crb_efficiency(a):
 def _relative_efficiency(a):
     n = a["n_pairs"]
     ratio = _div(a["var_r"], a["var_j"])
-    unexplained = np.clip(1 - a["corr_jr"] ** 2, 0, None)   # |ρ| can round to just above 1
+    unexplained = np.clip(a["unexplained_jr"], 0, None)   # 1 − ρ²; |ρ| can round to just above 1
     return Values(ratio, 2 * ratio * _sqrt(_div(unexplained, n - 1)), n)
 
 
@@ -263,109 +268,6 @@ PERFORMANCE_SCHEMA = pa.schema([
 
 ESTIMATE_COLUMNS = ("scenario", "estimator", "block", "rep", "estimate", "se", "ci_low", "ci_high",
                     "p_value", "status")
-
-# Per scenario x estimator: truth, rows, and the mean estimate (the centre of
-# bias-eliminated coverage). Small; computed first, then joined to every row.
-_KEYS_SQL = """
-SELECT t.scenario, t.estimator, t.truth, c.n_rows, c.mean_estimate
-FROM {truth} AS t
-JOIN (SELECT scenario, estimator, count(*) AS n_rows,
-             avg(estimate) FILTER (WHERE status = 'ok' AND isfinite(estimate)) AS mean_estimate
-      FROM {estimates} GROUP BY scenario, estimator) AS c
-  ON t.scenario = c.scenario AND t.estimator = c.estimator
-"""
-
-# 1 / 0 when the interval holds *point*, NULL without an interval.
-_COVERS = """CASE WHEN x.ci_low IS NULL OR x.ci_high IS NULL THEN NULL
-                WHEN x.ci_low <= {point} AND {point} <= x.ci_high THEN 1.0 ELSE 0.0 END"""
-
-# One pass over the 'ok' rows. A NULL output drops out of the aggregates that
-# use it, so each measure counts only the rows that have it.
-_SINGLE_SQL = """
-WITH rows AS (
-    SELECT x.scenario, x.estimator, x.block, x.estimate, x.se, k.truth, k.n_rows,
-           x.estimate - k.truth AS err,
-           x.ci_high - x.ci_low AS width,
-           {covers_truth} AS covers,
-           {covers_centre} AS covers_centre,
-           CASE WHEN x.p_value < $alpha THEN 1.0 WHEN x.p_value IS NOT NULL THEN 0.0 END AS rejects
-    FROM {estimates} AS x
-    JOIN {keys} AS k ON x.scenario = k.scenario AND x.estimator = k.estimator
-    WHERE x.status = 'ok' AND isfinite(x.estimate))
-SELECT scenario, estimator, block, grouping(block) AS whole,
-       any_value(n_rows)                                   AS n_rows,
-       any_value(truth)                                    AS truth,
-       count(*)                                            AS n_ok,
-       avg(err)                                            AS mean_err,
-       var_samp(err)                                       AS var_err,
-       avg(err * err)                                      AS mse,
-       var_samp(err * err)                                 AS var_sqerr,
-       count(se)                                           AS n_se,
-       avg(se * se)                                        AS mean_se2,
-       var_samp(se * se)                                   AS var_se2,
-       var_samp(CASE WHEN se IS NOT NULL THEN estimate END) AS var_est_se,
-       count(covers)                                       AS n_ci,
-       avg(covers)                                         AS coverage,
-       avg(covers_centre)                                  AS be_coverage,
-       avg(width)                                          AS mean_width,
-       var_samp(width)                                     AS var_width,
-       count(rejects)                                      AS n_p,
-       avg(rejects)                                        AS rejection
-FROM rows
-{by_group_and_block}
-"""
-
-# Both passes group twice: whole = 1 per scenario x estimator, 0 per seed block.
-_BY_GROUP_AND_BLOCK = """GROUP BY GROUPING SETS ((scenario, estimator), (scenario, estimator, block))
-ORDER BY scenario, estimator, block NULLS FIRST"""
-
-# Each estimator j joined with the reference r on (scenario, rep): the same
-# dataset. Paired outputs are NULL unless both are 'ok'; grouped as above.
-_PAIRED_SQL = """
-WITH rows AS (
-    SELECT x.scenario, x.estimator, x.block, x.rep, k.n_rows, x.estimate,
-           coalesce(x.status = 'ok' AND isfinite(x.estimate), false) AS ok,
-           x.estimate - k.truth AS err,
-           {covers_truth} AS covers
-    FROM {estimates} AS x
-    JOIN {keys} AS k ON x.scenario = k.scenario AND x.estimator = k.estimator),
-pairs AS (
-    SELECT j.scenario, j.estimator, j.block, j.n_rows AS n_rows_j, r.n_rows AS n_rows_r,
-           CASE WHEN j.ok AND r.ok THEN j.estimate END              AS est_j,
-           CASE WHEN j.ok AND r.ok THEN r.estimate END              AS est_r,
-           CASE WHEN j.ok AND r.ok THEN j.err END                   AS err_j,
-           CASE WHEN j.ok AND r.ok THEN r.err END                   AS err_r,
-           CASE WHEN j.ok AND r.ok THEN j.err * j.err END           AS sq_j,
-           CASE WHEN j.ok AND r.ok THEN r.err * r.err END           AS sq_r,
-           CASE WHEN j.ok AND r.ok THEN j.covers - r.covers END     AS d_cover
-    FROM rows AS j
-    JOIN rows AS r ON j.scenario = r.scenario AND j.rep = r.rep
-    WHERE r.estimator = $reference AND j.estimator <> $reference)
-SELECT scenario, estimator, block, grouping(block) AS whole,
-       count(*)                    AS n_matched,
-       any_value(n_rows_j)         AS n_rows_j,
-       any_value(n_rows_r)         AS n_rows_r,
-       count(est_j)                AS n_pairs,
-       avg(est_j)                  AS mean_j,
-       avg(est_r)                  AS mean_r,
-       var_samp(est_j)             AS var_j,
-       var_samp(est_r)             AS var_r,
-       corr(est_j, est_r)          AS corr_jr,
-       avg(sq_j)                   AS mse_j,
-       avg(sq_r)                   AS mse_r,
-       var_samp(sq_j)              AS var_sqerr_j,
-       var_samp(sq_r)              AS var_sqerr_r,
-       covar_samp(sq_j, sq_r)      AS cov_sqerr,
-       avg(err_j - err_r)          AS mean_dbias,
-       var_samp(err_j - err_r)     AS var_dbias,
-       avg(sq_j - sq_r)            AS mean_dmse,
-       var_samp(sq_j - sq_r)       AS var_dmse,
-       count(d_cover)              AS n_pairs_ci,
-       avg(d_cover)                AS mean_dcover,
-       var_samp(d_cover)           AS var_dcover
-FROM pairs
-{by_group_and_block}
-"""
 
 
 # --------------------------------------------------------------------------- inputs
@@ -472,12 +374,10 @@ def _numbers(column) -> np.ndarray:
     return pc.fill_null(column.cast(pa.float64()), np.nan).to_numpy(zero_copy_only=False)
 
 
-def _fetch(con, sql: str, params: dict) -> dict[str, np.ndarray]:
-    """A query's columns as numpy: numbers as float with NaN for NULL, text as objects."""
-    table = con.sql(sql, params=params).to_arrow_table()
-    numeric = (pa.types.is_integer, pa.types.is_floating, pa.types.is_decimal)
-    return {name: _numbers(table[name]) if any(f(table[name].type) for f in numeric)
-            else table[name].to_numpy(zero_copy_only=False) for name in table.column_names}
+def _keyed_rows(scenario: np.ndarray, estimator: np.ndarray, columns: dict, keep=None) -> dict[str, np.ndarray]:
+    """Rows keyed by scenario and estimator, with float columns; only the *keep* rows if given."""
+    rows = {"scenario": scenario, "estimator": estimator, **{k: np.asarray(v, float) for k, v in columns.items()}}
+    return rows if keep is None else {k: v[keep] for k, v in rows.items()}
 
 
 def _blocks(rows: dict[str, np.ndarray]) -> tuple[Blocks, list[tuple[str, str]]]:
@@ -503,14 +403,54 @@ def _within(blocks: Blocks, block_var: np.ndarray) -> np.ndarray:
     return np.where(blocks.m > 1, (blocks.m - 1) * block_var, 0.0)
 
 
-def _split(rows: dict[str, np.ndarray], used: str) -> tuple[dict, dict]:
-    """Split a grouping-sets result into per-group rows and per-block rows with m > 0."""
-    whole = rows.pop("whole") == 1
-    group = {k: v[whole] for k, v in rows.items()}
-    in_block = ~whole & (rows[used] > 0)
-    block = {k: v[in_block] for k, v in rows.items()}
-    block["m"] = block[used]
-    return group, block
+def _single_rows(con, estimates: str, sums: Sums) -> tuple[dict, dict]:
+    """Per-group and per-block inputs of the single-estimator measures (groups with an 'ok' replicate)."""
+    g = sums.groups
+    bs = sums.single
+    t, _, rows = bs.totals(g.n)
+    hits = centre_hits(con, estimates, g, t["estimate"].mean)
+    keep = t["err"].count > 0
+    single = _keyed_rows(g.scenario, g.estimator, {
+        "truth": g.truth, "n_rows": rows, "n_ok": t["err"].count,
+        "mean_err": t["err"].mean, "var_err": t["err"].var, "mse": t["sqerr"].mean, "var_sqerr": t["sqerr"].var,
+        "n_se": t["se2"].count, "mean_se2": t["se2"].mean, "var_se2": t["se2"].var,
+        "var_est_se": t["estimate_se"].var,
+        "n_ci": t["covers"].count, "coverage": t["covers"].mean, "be_coverage": _div(hits, t["covers"].count),
+        "mean_width": t["width"].mean, "var_width": t["width"].var,
+        "n_p": t["rejects"].count, "rejection": t["rejects"].mean,
+    }, keep)
+    b, used = bs.moments, bs.moments["err"].count > 0
+    blocks = _keyed_rows(g.scenario[bs.group], g.estimator[bs.group], {
+        "m": b["err"].count, "mean_err": b["err"].mean, "var_err": b["err"].var, "mse": b["sqerr"].mean}, used)
+    return single, blocks
+
+
+def _paired_rows(sums: Sums) -> tuple[dict, dict]:
+    """Per-group and per-block inputs of the paired measures (estimators with a matched replicate)."""
+    g = sums.groups
+    bs = sums.paired
+    t, c, _ = bs.totals(g.n)
+    rows_of = sums.single.totals(g.n)[2]
+    reference = g.reference
+    keep = t["matched"].count > 0
+    j, r, d = t["est_j"], t["est_r"], c[("est_j", "est_r")]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        unexplained = 1 - _div(d * d, j.m2 * r.m2)        # 1 − ρ², exactly 0 for identical estimators
+    paired = _keyed_rows(g.scenario, g.estimator, {
+        "n_matched": t["matched"].count, "n_rows_j": rows_of, "n_rows_r": np.where(reference >= 0, rows_of[reference], np.nan),
+        "n_pairs": j.count, "mean_j": j.mean, "mean_r": r.mean, "var_j": j.var, "var_r": r.var,
+        "unexplained_jr": unexplained,
+        "mse_j": t["sq_j"].mean, "mse_r": t["sq_r"].mean, "var_sqerr_j": t["sq_j"].var,
+        "var_sqerr_r": t["sq_r"].var, "cov_sqerr": _div(c[("sq_j", "sq_r")], t["sq_j"].count - 1.0),
+        "mean_dbias": t["dbias"].mean, "var_dbias": t["dbias"].var,
+        "mean_dmse": t["dmse"].mean, "var_dmse": t["dmse"].var,
+        "n_pairs_ci": t["dcover"].count, "mean_dcover": t["dcover"].mean, "var_dcover": t["dcover"].var,
+    }, keep)
+    b, used = bs.moments, bs.moments["est_j"].count > 0
+    blocks = _keyed_rows(g.scenario[bs.group], g.estimator[bs.group], {
+        "m": b["est_j"].count, "mean_j": b["est_j"].mean, "var_j": b["est_j"].var, "mean_r": b["est_r"].mean,
+        "var_r": b["est_r"].var, "mse_j": b["sq_j"].mean, "mse_r": b["sq_r"].mean}, used)
+    return paired, blocks
 
 
 @dataclass(frozen=True)
@@ -524,25 +464,14 @@ class _Aggregates:
 
 def _aggregate(con, estimates: str, truth: str, *, reference: str | None = None, level: float = 0.95,
                crb=None) -> _Aggregates:
-    """Check the inputs, run the two grouped passes and the block jackknife."""
+    """Check the inputs, take the block sums (one sorted pass) and run the block jackknife."""
     level = _check_level(level)
     _check_relations(con, estimates, truth, reference)
     crb = _crb_table(con, crb)
-    keys_name = "estbench_keys_in"
-    con.register(keys_name, con.sql(_KEYS_SQL.format(estimates=estimates, truth=truth)).to_arrow_table())
-    try:
-        covers_truth = _COVERS.format(point="k.truth")
-        single, block_rows = _split(_fetch(con, _SINGLE_SQL.format(
-            estimates=estimates, keys=keys_name, covers_truth=covers_truth, by_group_and_block=_BY_GROUP_AND_BLOCK,
-            covers_centre=_COVERS.format(point="k.mean_estimate")), {"alpha": 1.0 - level}), "n_ok")
-        paired = pair_blocks = None
-        if reference is not None:
-            paired, pair_blocks = _split(_fetch(con, _PAIRED_SQL.format(
-                estimates=estimates, keys=keys_name, covers_truth=covers_truth,
-                by_group_and_block=_BY_GROUP_AND_BLOCK), {"reference": reference}),
-                "n_pairs")
-    finally:
-        con.unregister(keys_name)
+    truth_table = con.sql(f"SELECT scenario, estimator, truth FROM {truth}").to_arrow_table()
+    sums = block_sums(con, estimates, truth_table, reference=reference, alpha=1.0 - level)
+    single, block_rows = _single_rows(con, estimates, sums)
+    paired, pair_blocks = _paired_rows(sums) if reference is not None else (None, None)
     single["crb"] = np.full(len(single["scenario"]), np.nan) if crb is None else _align(
         list(zip(crb["scenario"].to_pylist(), crb["estimator"].to_pylist())), _numbers(crb["crb"]), single)
 
@@ -593,8 +522,7 @@ def _flags(ok, defined) -> pa.Array:
 def _without_rounding_noise(value, mcse):
     """An MCSE below 1e-12·|value| would need ~10^24 replicates to be Monte
     Carlo error: it is float rounding of a spread that is really 0 (e.g. the
-    widths of known-variance intervals), whose last digits change with
-    DuckDB's summation order. Report it as 0 so printed results are stable."""
+    widths of known-variance intervals). Report it as 0."""
     with np.errstate(invalid="ignore"):
         return np.where(np.abs(mcse) < 1e-12 * np.abs(value), 0.0, mcse)
 

@@ -216,13 +216,15 @@ def paired_differences(con, scenario: str, first: str, second: str, measures, pa
     ``sb_a``/``sb_b`` (signs of the bias), ``sc_a``/``sc_b`` (signs of
     coverage − level) and ``m_a``/``m_b`` (mean estimates). One small query
     per pair: each side is one estimator's rows of one scenario, which the
-    store keeps together, so the join on rep stays in cache.
+    store keeps together, so the join on rep stays in cache. The sums run in
+    rep order, so the result does not depend on how rows reached the store.
     """
     side = """SELECT rep, estimate AS x, ci_low AS lo, ci_high AS hi FROM estimates
               WHERE scenario = $scenario AND estimator = ${who} AND status = 'ok' AND isfinite(estimate)"""
     diffs = {m: f"{_CONTRIBUTIONS[m].format(x='b')} - ({_CONTRIBUTIONS[m].format(x='a')})" for m in measures}
-    aggregates = ", ".join(f"count({d}) AS {m}_pairs, avg({d}) AS {m}_mean, stddev_samp({d}) AS {m}_sd"
-                           for m, d in diffs.items())
+    # ORDER BY rep: sums in one fixed order, so the result is the same on every render
+    aggregates = ", ".join(f"count({d}) AS {m}_pairs, avg({d} ORDER BY rep) AS {m}_mean, "
+                           f"stddev_samp({d} ORDER BY rep) AS {m}_sd" for m, d in diffs.items())
     used = {k: v for k, v in params.items() if f"${k}" in aggregates}
     return fetch_dicts(con, f"""
         WITH a AS ({side.format(who="first")}), b AS ({side.format(who="second")})
