@@ -98,7 +98,7 @@ def test_interrupted_before_ingest_loses_nothing(tmp_path):
     path = write_study(tmp_path, tiny_study())
     # Stop after the simulation jobs, as a kill between shard write and ingest would.
     until = run_cli("run", path, "--cores", "2", "--", "--until", "simulate", cwd=tmp_path, check=True)
-    assert "done. Report" not in until.stdout and "the report was not brought up to date" in until.stdout
+    assert "Report:" not in until.stdout and "the report was not brought up to date" in until.stdout
     assert not (tmp_path / "results/tiny/store.duckdb").exists()
     shards = sorted((tmp_path / "results/tiny/shards").rglob("*.parquet"))
     mtimes = [p.stat().st_mtime_ns for p in shards]
@@ -113,6 +113,6 @@ def test_dry_run_lists_the_jobs_and_claims_no_report(tmp_path):
     proc = run_cli("run", path, "--cores", "2", "--", "--dry-run", cwd=tmp_path, check=True)
     out = proc.stdout + proc.stderr
     assert "simulate" in out and "ingest" in out and "report" in out  # Snakemake's own job list
-    assert "done. Report" not in out and "dry run" in proc.stdout
+    assert "Report:" not in out and "estbench: done." not in out and "dry run" in proc.stdout
     assert not list((tmp_path / "results").rglob("*.parquet"))
     assert not (tmp_path / "results/tiny/store.duckdb").exists()

@@ -244,6 +244,33 @@ def test_report_is_rendered_from_the_store_alone(rich_report, tmp_path):
     assert (tmp_path / "out" / "performance.csv").read_text() == (folder / "out" / "performance.csv").read_text()
 
 
+def test_estimators_that_fail_too_often_are_flagged_with_plain_shares(tmp_path):
+    # By construction: `short` fails on every replicate at n = 5 (100 of 100) and never at
+    # n = 20; `gappy` is non-finite on 3 of the 10 replicates of every block (30 of 100).
+    (tmp_path / "survey_rules.py").write_text(
+        "import numpy as np\n\n"
+        "def short(x):\n"
+        "    if x.shape[1] < 10:\n"
+        "        raise ValueError('too few plots')\n"
+        "    return x.mean(axis=1)\n\n"
+        "def gappy(x):\n"
+        "    est = x.mean(axis=1)\n"
+        "    est[:3] = np.nan\n"
+        "    return est\n")
+    raw = tiny_study(replicates=100, max_failed_share=0.25)
+    raw["estimators"]["short"] = {"function": "survey_rules:short", "target": "mean"}
+    raw["estimators"]["gappy"] = {"function": "survey_rules:gappy", "target": "mean"}
+    html = render_report(build_store(tmp_path, raw), tmp_path / "out")
+    precision = html.split('<section id="precision">')[1].split("</section>")[0]
+    assert re.findall(r"<li>(.*?)</li>", precision) == [
+        "short failed on every replicate of normal, n = 5 (100 of 100, 100%)",
+        "gappy failed on 30 of 100 replicates of normal, n = 5 (30.0%), more than max_failed_share = 0.25",
+        "gappy failed on 30 of 100 replicates of normal, n = 20 (30.0%), more than max_failed_share = 0.25"]
+    assert '100 of 100 <span class="mcse">(100%)</span>' in precision and "e+02" not in html
+    assert precision.count('30 of 100 <span class="mcse">(30.0%)</span>') == 2
+    assert "3 scenario × estimator pairs failed too often</strong>" in html
+
+
 def test_one_sample_size_and_no_intervals_are_said_plainly(tmp_path):
     raw = tiny_study(sample_sizes=[20], reference=None)
     raw.pop("reference")

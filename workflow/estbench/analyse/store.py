@@ -33,7 +33,8 @@ _STUDY_DDL = """
 CREATE OR REPLACE TABLE study (
     name VARCHAR, description VARCHAR, seed VARCHAR, replicates BIGINT,
     replicates_run BIGINT, block_size BIGINT, blocks_per_job BIGINT, n_blocks BIGINT,
-    level DOUBLE, reference VARCHAR, targets VARCHAR, study_yaml VARCHAR, ingested_at VARCHAR);
+    level DOUBLE, reference VARCHAR, targets VARCHAR, max_failed_share DOUBLE, study_yaml VARCHAR,
+    ingested_at VARCHAR);
 CREATE OR REPLACE TABLE scenarios (
     scenario VARCHAR PRIMARY KEY, dgm VARCHAR, n BIGINT, spec VARCHAR, swept VARCHAR,
     dgm_description VARCHAR, position BIGINT, replicates BIGINT);
@@ -115,10 +116,11 @@ def _write_study_tables(con, study: Study) -> None:
     import yaml
     now = time.strftime("%Y-%m-%dT%H:%M:%S%z")
     con.execute(_STUDY_DDL)
-    con.execute("INSERT INTO study VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)", [
+    con.execute("INSERT INTO study VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?)", [
         study.name, study.description, str(study.seed), study.replicates, study.replicates_run,
         study.block_size, study.blocks_per_job, study.n_blocks, study.level, study.reference,
-        json.dumps(study.targets), yaml.safe_dump(dict(study.raw), sort_keys=False), now])
+        json.dumps(study.targets), study.max_failed_share,
+        yaml.safe_dump(dict(study.raw), sort_keys=False), now])
     scen_rows, truth_rows = [], []
     for pos, s in enumerate(study.scenarios):
         scen_rows.append([s.key, s.dgm, s.n, canonical_json(s.spec), json.dumps(s.swept),

@@ -16,7 +16,14 @@ from pathlib import Path
 
 from estbench import __version__
 from estbench.app.locate import locate_study
-from estbench.core.errors import UserError, entry_point
+from estbench.core.errors import (
+    EXIT_FAILED_REPLICATES,
+    EXIT_INTERRUPTED,
+    EXIT_RUN_FAILED,
+    EXIT_USER_ERROR,
+    UserError,
+    entry_point,
+)
 
 #: Seed blocks per scenario below which `check` warns that jackknife MCSEs are rough
 #: (K - 1 degrees of freedom; the README's advice of at least 20 is common practice).
@@ -93,16 +100,18 @@ def cmd_run(args) -> int:
     else:
         code = run(with_allocation(study))
     if code != 0:
-        return 1
-    layout = study.layout()
+        return EXIT_RUN_FAILED
     if dry_run:
         print("estbench: dry run: the jobs above are what a run would do; nothing was computed")
-    elif partial:
+        return 0
+    if partial:
         print(f"estbench: stopped where Snakemake was told to ({' '.join(args.snakemake_args)}); "
               f"the report was not brought up to date: run again without it to finish")
-    else:
-        print(f"estbench: done. Report: {layout.report_html}  Measures: {layout.performance_csv}")
-    return 0
+        return 0
+    from estbench.app.summary import run_summary, summary_lines
+    summary = run_summary(study.layout())
+    print("\n".join(summary_lines(summary)))
+    return summary.exit_status
 
 
 def cmd_status(args) -> int:
@@ -266,7 +275,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--verbose", action="store_true",
                    help="show Snakemake's own output instead of the progress line")
     p.set_defaults(snakemake_args=[])
-    p.epilog = "Arguments after a lone -- go to Snakemake unchanged, e.g. estbench run -- --dry-run."
+    p.formatter_class = argparse.RawDescriptionHelpFormatter
+    p.epilog = ("Arguments after a lone -- go to Snakemake unchanged, e.g. estbench run -- --dry-run.\n\n"
+                "Exit status:\n"
+                "  0    the run completed; a summary of the store is printed\n"
+                f"  {EXIT_RUN_FAILED}    the run failed; the end of Snakemake's log is printed, finished shards are kept\n"
+                f"  {EXIT_USER_ERROR}    a user error: a bad study file or option, or another run of the study\n"
+                "       in progress\n"
+                f"  {EXIT_FAILED_REPLICATES}    the run completed, but an estimator failed on every replicate of a\n"
+                "       scenario or on more than the study's max_failed_share of them; the results\n"
+                "       and the report are kept\n"
+                f"  {EXIT_INTERRUPTED}  interrupted (Ctrl-C); run the same command again to resume")
 
     _verb(sub, "check", cmd_check, "validate a study file and say what it would run",
           "Validate the study file (schema and meaning) without running anything.")

@@ -3,7 +3,7 @@
 - A study is run by one ``estbench run`` at a time per folder: an exclusive
   ``flock`` on ``results/<study>/.run.lock`` refuses a second one. The kernel
   drops the lock when its holder dies, even by SIGKILL, so no stale lock of
-  ours can block a later run.
+  ours can block a later run; a run that ends (cleanly or not) removes the file.
 - Snakemake's own locks do go stale when it is killed. They are cleared (by
   ``snakemake --unlock``) only when no other estbench run is alive in this
   folder: every run holds a shared ``flock`` on ``.snakemake/estbench.gate``,
@@ -34,27 +34,48 @@ from estbench.study import jobs
 from estbench.study.model import Study
 
 
+def _is_at(fh, path: Path) -> bool:
+    """True if the open file *fh* is the file now at *path* (not one unlinked since)."""
+    try:
+        now = os.stat(path)
+    except FileNotFoundError:
+        return False
+    mine = os.fstat(fh.fileno())
+    return (mine.st_dev, mine.st_ino) == (now.st_dev, now.st_ino)
+
+
 @contextmanager
 def study_lock(study: Study, workdir: Path):
-    """Hold the study's run lock; ``UserError`` if another run holds it."""
+    """Hold the study's run lock; ``UserError`` if another run holds it.
+
+    The holder removes the lock file when it leaves, while still holding the
+    lock. A starter that opened the file before that removal gets its lock on a
+    file no longer at the path, so after locking it checks that the path still
+    names the file it locked, and starts again if not.
+    """
     lock = study.layout(workdir).run_lock
     lock.parent.mkdir(parents=True, exist_ok=True)
-    fh = open(lock, "a+")
-    try:
-        fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except BlockingIOError:
-        fh.seek(0)
-        holder = fh.read().strip() or "unknown"
+    while True:
+        fh = open(lock, "a+")
+        try:
+            fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            fh.seek(0)
+            holder = fh.read().strip() or "unknown"
+            fh.close()
+            raise UserError(f"another `estbench run` of study {study.name!r} is in progress in this folder "
+                            f"(pid {holder}); wait for it to finish or stop it first") from None
+        if _is_at(fh, lock):
+            break
         fh.close()
-        raise UserError(f"another `estbench run` of study {study.name!r} is in progress in this folder "
-                        f"(pid {holder}); wait for it to finish or stop it first") from None
-    fh.seek(0)
-    fh.truncate()
-    fh.write(str(os.getpid()))
-    fh.flush()
     try:
+        fh.seek(0)
+        fh.truncate()
+        fh.write(str(os.getpid()))
+        fh.flush()
         yield
     finally:
+        lock.unlink(missing_ok=True)
         fh.close()
 
 

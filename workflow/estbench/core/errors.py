@@ -11,8 +11,13 @@ import sys
 from functools import wraps
 from typing import Callable
 
+#: Exit status of ``estbench run`` when the workflow itself failed (Snakemake stopped).
+EXIT_RUN_FAILED = 1
 #: Exit status of every estbench entry point when the user can fix the problem.
 EXIT_USER_ERROR = 2
+#: Exit status of ``estbench run`` when the run completed but an estimator failed too
+#: often (on every replicate of a scenario, or above the study's ``max_failed_share``).
+EXIT_FAILED_REPLICATES = 3
 #: Exit status after Ctrl-C (128 + SIGINT).
 EXIT_INTERRUPTED = 130
 

@@ -13,6 +13,7 @@ from typing import Mapping
 import numpy as np
 import yaml
 
+from estbench.analyse.failures import failure_warnings, max_failed_share_of
 from estbench.report import data as report_data
 from estbench.report.figures import Style, estimator_styles
 
@@ -34,6 +35,10 @@ class Family:
     @property
     def sample_sizes(self) -> list[int]:
         return [s["n"] for s in self.scenarios]
+
+    def scenario_title(self, scenario: Mapping) -> str:
+        """One of its scenarios in words: 'normal (df = 3), n = 20'."""
+        return f"{self.title}, n = {scenario['n']}"
 
 
 def _short(value) -> str:
@@ -145,3 +150,14 @@ class ReportModel:
 
     def truth(self, scenario: str, estimand: str) -> dict | None:
         return self._truth.get((scenario, estimand))
+
+    @property
+    def max_failed_share(self) -> float:
+        return max_failed_share_of(self.study)
+
+    def failure_warnings(self) -> list[str]:
+        """One sentence per scenario x estimator pair that failed on every replicate or
+        on a share above ``max_failed_share``, in the study's order."""
+        where = {s["scenario"]: f.scenario_title(s) for f in self.families for s in f.scenarios}
+        return [w.text(where[w.scenario]) for w in failure_warnings(
+            self.counts, self.max_failed_share, list(where), self.estimator_names())]

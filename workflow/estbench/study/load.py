@@ -7,7 +7,7 @@ from typing import Any, Mapping
 
 from estbench.core.errors import StudyError
 from estbench.study.checks import checkable_part, semantic_problems
-from estbench.study.model import EstimatorSpec, Study
+from estbench.study.model import DEFAULT_MAX_FAILED_SHARE, EstimatorSpec, Study
 from estbench.study.schema import read_yaml, schema_errors
 
 
@@ -34,7 +34,9 @@ def study_from_mapping(raw: Any, source: Path | None = None) -> Study:
         blocks_per_job=None if raw.get("blocks_per_job", "auto") == "auto" else int(raw["blocks_per_job"]), level=float(raw.get("level", 0.95)),
         sample_sizes=tuple(int(n) for n in raw["sample_sizes"]), dgms=dict(raw["dgms"]),
         estimators=estimators, reference=raw.get("reference"),
-        targets=dict(raw.get("targets", {})), report=dict(raw.get("report", {})),
+        targets=dict(raw.get("targets", {})),
+        max_failed_share=float(raw.get("max_failed_share", DEFAULT_MAX_FAILED_SHARE)),
+        report=dict(raw.get("report", {})),
         source=source, raw=raw)
 
 

@@ -27,6 +27,11 @@ class EstimatorSpec:
 #: several seconds of work for cheap estimators, so start-up stays a few per cent.
 AUTO_VALUES_PER_JOB = 50_000_000
 
+#: Default of ``max_failed_share``: above this share of failed replicates in a
+#: scenario an estimator is flagged. Common practice, chosen by estbench (no
+#: published rule): a fifth of the datasets missing is enough to question the rest.
+DEFAULT_MAX_FAILED_SHARE = 0.2
+
 
 @dataclass(frozen=True)
 class Study:
@@ -44,6 +49,7 @@ class Study:
     estimators: Mapping[str, EstimatorSpec]
     reference: str | None
     targets: Mapping[str, float]
+    max_failed_share: float      #: failed share in a scenario above which an estimator is flagged
     report: Mapping              #: report-only options (tolerance, zip, asymptotic_efficiency)
     source: Path | None          #: the study file, when loaded from one
     raw: Mapping                 #: the mapping as written, for the report appendix

@@ -60,6 +60,7 @@ def glance(model: ReportModel, con) -> dict:
     estimands = [{"estimand": t, "estimators": model.estimator_names(t)} for t in model.targets()]
     return {
         "rows": sum(per_pair), "failed": sum(c["failed"] for c in counts), "estimands": estimands,
+        "failure_warnings": len(model.failure_warnings()),
         "pairs_min": min(per_pair, default=0), "pairs_max": max(per_pair, default=0),
         "pairs": len(per_pair), "pairs_expected": len(model.scenarios) * len(model.estimators),
         "dgms": dgms, "sample_sizes": sorted({s["n"] for s in model.scenarios}),

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import json
 
-
+from estbench.analyse.failures import share_text
 from estbench.report import data as report_data
 from estbench.report.model import ReportModel
 from estbench.report.sections.base import SectionInputs
@@ -70,7 +70,7 @@ def _failures(model: ReportModel, con) -> dict:
                 c = counts.get((s["scenario"], est))
                 if c and c["failed"]:
                     cells[est] = {"failed": c["failed"], "rows": c["rows"],
-                                  "share": format(100 * c["failed"] / c["rows"], ".2g") + "%",
+                                  "share": share_text(c["failed"], c["rows"]),
                                   "tip": tips.get((s["scenario"], est), "")}
             if cells:
                 rows.append({"where": f.title, "n": s["n"], "cells": cells})
@@ -80,7 +80,9 @@ def _failures(model: ReportModel, con) -> dict:
     total = sum(c["rows"] for c in model.counts)
     failed = sum(c["failed"] for c in model.counts)
     return {"failure_rows": rows, "failure_estimators": [n for n in names if any(n in r["cells"] for r in rows)],
-            "failure_messages": by_estimator, "failed": failed, "replicates": total}
+            "failure_messages": by_estimator, "failed": failed, "replicates": total,
+            "failure_warnings": model.failure_warnings(),
+            "max_failed_share": model.max_failed_share}
 
 
 # ------------------------------------------------------------------ performance tables
