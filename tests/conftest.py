@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import hashlib
 import os
+import shutil
 import signal
 import subprocess
 import sys
@@ -66,3 +68,38 @@ def run_cli(*args, cwd: Path, check: bool = False, timeout: float = 600) -> subp
 @pytest.fixture
 def study_dir(tmp_path) -> Path:
     return tmp_path
+
+
+@pytest.fixture(scope="session")
+def finished_tiny(tmp_path_factory) -> Path:
+    """A folder where `estbench run` finished tiny_study(): copy it with copy_project,
+    never change it (one run shared by every fault test)."""
+    cwd = tmp_path_factory.mktemp("finished-tiny")
+    run_cli("run", write_study(cwd, tiny_study()), "--cores", "2", cwd=cwd, check=True)
+    return cwd
+
+
+def copy_project(source: Path, target: Path) -> Path:
+    """Copy a study folder (results and Snakemake's records too), keeping modification times."""
+    shutil.copytree(source, target, symlinks=True, dirs_exist_ok=True)
+    return target
+
+
+def sha256(path: Path) -> str:
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+def shard_mtimes(cwd: Path) -> dict[str, int]:
+    """Shard path (relative to *cwd*) -> modification time in ns: what a rerun must not touch."""
+    return {str(p.relative_to(cwd)): p.stat().st_mtime_ns for p in sorted(Path(cwd).rglob("*.parquet"))}
+
+
+def cli_here(capsys, monkeypatch, cwd: Path, *args) -> tuple[int, str, str]:
+    """``estbench ARGS`` through the CLI's own entry point in this process: the code
+    run_cli runs, without an interpreter start-up. Returns (exit status, stdout,
+    stderr); a traceback would escape as an exception and fail the test."""
+    from estbench.app.cli import main
+    monkeypatch.chdir(cwd)
+    code = main([str(a) for a in args])
+    out = capsys.readouterr()
+    return code, out.out, out.err

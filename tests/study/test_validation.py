@@ -1,8 +1,7 @@
 """Bad study files: one clear line naming the key and the rule, exit 2, nothing written."""
 
 import pytest
-
-from conftest import run_cli, tiny_study, write_study
+from conftest import cli_here, run_cli, tiny_study, write_study
 
 
 def _bad(**changes):
@@ -52,16 +51,45 @@ CASES = {
                             "`blocks_per_job`: must be a positive integer or 'auto', got 0"),
     "unknown target measure": (_bad(targets={"bias": 0.1, "speed": 1}),
                                "`targets`: key 'speed' must be a measure name: bias, relative_bias"),
+    "replicates as text": (_bad(replicates="many"), "`replicates`: must be an integer, got 'many'"),
+    "negative replicates": (_bad(replicates=-5), "`replicates`: must be >= 1, got -5"),
+    "sample sizes not a list": (_bad(sample_sizes=5), "`sample_sizes`: must be an array, got 5"),
+    "repeated sample size": (_bad(sample_sizes=[5, 5]), "`sample_sizes`: must not repeat a value, got [5, 5]"),
+    "seed as text": (_bad(seed="abc"), "`seed`: must be an integer, got 'abc'"),
+    "negative target": (_bad(targets={"bias": -0.1}), "`targets.bias`: must be > 0, got -0.1"),
+    "no estimators": (_bad(estimators={}, reference=DELETE), "`estimators`: must have at least 1 entry"),
+    "unknown DGM kind": (_bad(dgms={"normal": {"shape": "bell"}}),
+                         "`dgms.normal`: needs exactly one of: `distribution`"),
+    "unknown mechanism": (_bad(dgms={"normal": {"mechanism": "teleport"}}),
+                          ("`dgms.normal.mechanism`: must be one of two_arm, regression, proportion, "
+                           "counts, got 'teleport'")),
+    "two DGM names for one DGM": (
+        _bad(dgms={"normal": {"distribution": "norm", "params": {"loc": 2.0}},
+                   "gauss": {"distribution": "norm", "params": {"loc": 2.0}}}),
+        "`dgms.gauss`: draws the same data as `dgms.normal` (identical spec); remove one of them"),
+    "function without a module": (_bad(estimators={"mean": {"function": "mean", "target": "mean"}}),
+                                  "`estimators.mean.function`: must have the form module:callable"),
+    "function not callable": (_bad(estimators={"mean": {"function": "location:np", "target": "mean"}}),
+                              "`estimators.mean.function`: cannot use 'location:np': location:np is not callable"),
+    "estimand no DGM knows": (_bad(estimators={"mean": {"function": "location:mean", "target": "speed"}}),
+                              "`estimators.mean.target`: DGM 'normal' cannot supply the estimand 'speed'"),
+    "argument the estimator does not take": (
+        _bad(estimators={"mean": {"function": "location:mean", "target": "mean", "args": {"speed": 1}}}),
+        ("`estimators.mean.function`: a trial run on DGM 'normal' (n = 20) failed: TypeError: mean() got "
+         "an unexpected keyword argument 'speed'")),
+    "unknown estimator key": (
+        _bad(estimators={"mean": {"function": "location:mean", "target": "mean", "colour": "red"}}),
+        "`estimators.mean.colour`: unknown key; allowed keys: args, description, function, target"),
+    "a list, not a study": ([1, 2], "`(top level)`: the study must be a mapping of keys, got list"),
 }
 
 
 @pytest.mark.parametrize("case", sorted(CASES))
-def test_bad_study_is_refused_with_a_clear_line(tmp_path, case):
+def test_bad_study_is_refused_with_a_clear_line(tmp_path, case, capsys, monkeypatch):
     study, expected = CASES[case]
-    proc = run_cli("check", write_study(tmp_path, study), cwd=tmp_path)
-    assert proc.returncode == 2, proc.stderr
-    assert expected in proc.stderr, proc.stderr
-    assert "Traceback" not in proc.stderr
+    code, _, err = cli_here(capsys, monkeypatch, tmp_path, "check", write_study(tmp_path, study))
+    assert code == 2, err
+    assert expected in err, err
     assert sorted(p.name for p in tmp_path.iterdir()) == ["study.yaml"]  # nothing written
 
 
@@ -80,6 +108,30 @@ def test_malformed_yaml_names_the_line(tmp_path):
     proc = run_cli("run", path, cwd=tmp_path)
     assert proc.returncode == 2 and "is not valid YAML at line" in proc.stderr
     assert "Traceback" not in proc.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["study.yaml"]
+
+
+#: Study files that cannot be read as a mapping at all: name -> (bytes, or None for a
+#: folder in the file's place; the message).
+UNREADABLE = {
+    "empty file": (b"", "is empty"),
+    "only comments": (b"# plot yields, to be filled in\n", "is empty"),
+    "not UTF-8": (b"\xff\xfe\x00plots", "is not UTF-8 text: byte 0xff at position 0"),
+    "tab indentation": (b"study: x\n\tseed: 1\n", "is not valid YAML at line 2, column 1"),
+    "an estimator named twice": (
+        (b"study: x\nestimators:\n  mean: {function: location:mean, target: mean}\n"
+         b"  mean: {function: location:median, target: mean}\n"), "duplicate key 'mean'"),
+    "a folder": (None, "cannot read study file"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(UNREADABLE))
+def test_unreadable_study_file_is_refused(tmp_path, case, capsys, monkeypatch):
+    content, expected = UNREADABLE[case]
+    path = tmp_path / "study.yaml"
+    path.mkdir() if content is None else path.write_bytes(content)
+    code, _, err = cli_here(capsys, monkeypatch, tmp_path, "check", path)
+    assert code == 2 and expected in err and str(path) in err, err
     assert sorted(p.name for p in tmp_path.iterdir()) == ["study.yaml"]
 
 

@@ -11,8 +11,9 @@ from __future__ import annotations
 import json
 import sys
 import time
+from contextlib import contextmanager
 from pathlib import Path
-from typing import Iterable
+from typing import Iterable, Iterator, Mapping
 
 import duckdb
 import pyarrow as pa
@@ -66,18 +67,58 @@ CREATE TABLE IF NOT EXISTS estimates (
 """
 
 
-def open_read_only(store: Path | str) -> duckdb.DuckDBPyConnection:
-    """Open the store for reading; a clear ``UserError`` if it is missing or busy."""
+#: Words of DuckDB's errors that mean the store file itself is damaged (cut short,
+#: overwritten, a failed checksum), not that a query is wrong.
+_DAMAGE_SIGNS = ("not a valid duckdb database file", "could not read enough bytes", "corrupt database file")
+
+
+def damaged_store(store: Path | str, detail: str) -> UserError:
+    """The error for a store file that cannot be read: what to do about it."""
+    store = Path(store)
+    if store.is_absolute() and store.is_relative_to(Path.cwd()):
+        store = store.relative_to(Path.cwd())
+    return UserError(f"the store {store} is damaged ({detail}); delete it and run `estbench run` again: "
+                     f"the shards are kept, so the run only loads them into a new store")
+
+
+@contextmanager
+def reading_store(store: Path | str) -> Iterator[None]:
+    """Turn DuckDB's errors about a damaged store file into ``damaged_store``;
+    other errors (a bug, a wrong query) pass unchanged."""
+    try:
+        yield
+    except duckdb.Error as exc:
+        first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        if any(sign in first.lower() for sign in _DAMAGE_SIGNS):
+            raise damaged_store(store, first) from None
+        raise
+
+
+def open_read_only(store: Path | str, config: Mapping | None = None) -> duckdb.DuckDBPyConnection:
+    """Open the store for reading (with DuckDB settings *config*); a clear ``UserError``
+    if it is missing, busy, or damaged: not a DuckDB file, or shorter than the blocks it
+    records (cut short by a full disk or an interrupted copy)."""
     store = Path(store)
     if not store.exists():
         raise UserError(f"no store at {store}: run `estbench run` first")
     try:
-        return duckdb.connect(str(store), read_only=True)
+        with reading_store(store):
+            con = duckdb.connect(str(store), read_only=True, config=dict(config or {}))
     except duckdb.IOException as exc:
         if "lock" in str(exc).lower():
             raise UserError(f"the store {store} is being written by another process; "
                             f"try again when it finishes") from None
         raise UserError(f"cannot open the store {store}: {exc}") from None
+    # Each block in use has its own place in the file. (Not checked while a write-ahead
+    # log is waiting: its blocks live in memory until the next checkpoint.)
+    size = store.stat().st_size
+    [(block_size, blocks)] = con.execute("SELECT block_size, used_blocks FROM pragma_database_size() "
+                                         "WHERE database_name = current_database()").fetchall()
+    if size < block_size * blocks and not store.with_name(f"{store.name}.wal").exists():
+        con.close()
+        raise damaged_store(store, f"{size:,} bytes, shorter than the {blocks} blocks of "
+                                   f"{block_size:,} bytes it uses")
+    return con
 
 
 #: Ingest streams Parquet row groups into the store; with these settings DuckDB keeps
@@ -203,10 +244,13 @@ def ingest(store: Path | str, study: Study, shards: Iterable[Path | str]) -> dic
         _write_derived(con, study)
         rows = con.execute("SELECT count(*) FROM estimates").fetchone()[0]
         con.execute("COMMIT")
+        con.execute("CHECKPOINT")
     except BaseException:
         con.close()
+        if not existed:  # no store to go back to (a full disk, say): leave no half-made one
+            for path in (store, store.with_name(f"{store.name}.wal")):
+                path.unlink(missing_ok=True)
         raise
-    con.execute("CHECKPOINT")
     con.close()
     return {"added": len([p for p in fresh if p not in known]), "replaced": len([p for p in fresh if p in known]),
             "removed": len([p for p in stale if p not in wanted]),
@@ -214,11 +258,18 @@ def ingest(store: Path | str, study: Study, shards: Iterable[Path | str]) -> dic
             "seconds": round(time.perf_counter() - start, 3)}
 
 
+def check_store(store: Path | str) -> None:
+    """``UserError`` if the store exists but cannot be opened (see ``open_read_only``)."""
+    if Path(store).exists():
+        open_read_only(store).close()
+
+
 def read_table(store: Path | str, sql: str, params=None) -> pa.Table:
     """Run one read-only query against the store and return an Arrow table."""
     con = open_read_only(store)
     try:
-        return con.sql(sql, params=params).to_arrow_table()
+        with reading_store(store):
+            return con.sql(sql, params=params).to_arrow_table()
     finally:
         con.close()
 

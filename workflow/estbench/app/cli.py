@@ -153,17 +153,10 @@ def cmd_report(args) -> int:
 
 
 def cmd_query(args) -> int:
-    import duckdb
     import pyarrow.csv as pacsv
-    from estbench.analyse.store import open_read_only
-    study = _load(args)
-    con = open_read_only(study.layout().store)
-    try:
-        table = con.sql(args.sql).to_arrow_table()
-    except duckdb.Error as exc:
-        raise UserError(f"query failed: {str(exc).splitlines()[0]}") from None
-    finally:
-        con.close()
+
+    from estbench.app.query import run_query
+    table = run_query(_load(args).layout().store, args.sql)
     pacsv.write_csv(table, sys.stdout.buffer)
     return 0
 

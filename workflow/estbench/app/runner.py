@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import fcntl
 import os
+import shutil
 import subprocess
 import sys
 import threading
@@ -26,6 +27,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
+from estbench.analyse.store import check_store
 from estbench.app.status import ShardPlan, pending_jobs, shard_plans
 from estbench.core.bundled import SNAKEFILE
 from estbench.core.errors import UserError
@@ -217,12 +219,14 @@ def run_study(study: Study, study_file: Path, workdir: Path, cores: int, extra: 
         plans = shard_plans(study, workdir)
         for line in remove_bad_shards(study, workdir, plans):
             print(f"estbench: removed a damaged shard, to be recomputed: {line}", file=sys.stderr)
+        check_store(study.layout(workdir).store)  # a damaged store: say so before Snakemake starts
         marker = study.layout(workdir).recompute_marker
         for attempt in (1, 2):
             marker.unlink(missing_ok=True)
             if attempt == 2:  # ingest removed damaged shards: look again
                 plans = shard_plans(study, workdir)
             extra_args = [*_force_ingest_if_records_missing(study, workdir), *extra]
+            started = time.time()
             code, log = _call(snakemake_command(study_file, workdir, cores, extra_args), study, workdir,
                               pending_jobs(study, workdir, plans), verbose)
             if code == 0:
@@ -235,8 +239,42 @@ def run_study(study: Study, study_file: Path, workdir: Path, cores: int, extra: 
                 tail = log.read_text(errors="replace").splitlines()[-25:]
                 print("\n".join(["estbench: Snakemake stopped with an error; the end of its log:", *tail,
                                  f"estbench: full log: {log.relative_to(workdir)}"]), file=sys.stderr)
+            for line in failed_step_lines(study, workdir, started):
+                print(f"estbench: {line}", file=sys.stderr)
             return code
     return code
+
+
+#: Free bytes below which a failed run blames a full disk (a shard or a log needs more).
+_NEARLY_FULL = 1 << 20
+
+
+def failed_step_lines(study: Study, workdir: Path, since: float) -> list[str]:
+    """What the steps that failed in a run started at *since* said: estbench's own lines
+    and Python's fatal errors from the logs written since, and each job that left no
+    record and no word. Snakemake's log shows only that a job failed."""
+    layout, lines = study.layout(workdir), []
+    for log in sorted(layout.logs.rglob("*.log")):
+        try:
+            if log.name.startswith("snakemake-") or log.stat().st_mtime < since - 1:
+                continue
+            text = log.read_text(errors="replace").splitlines()
+        except OSError:
+            continue
+        where = log.relative_to(workdir)
+        said = [line.removeprefix("estbench: ") for line in text
+                if line.startswith(("estbench: ", "Fatal Python error: "))]
+        lines += [f"{where}: {line}" for line in said]
+        if not text and log.parent.parent.name == "jobs" and not layout.job_record(
+                log.parent.name, log.stem).exists():
+            lines.append(f"{where}: the job ended without a word: its process was ended (by an estimator "
+                         f"calling os._exit, or by the system, e.g. out of memory) or its log could not "
+                         f"be written (a full disk)")
+    free = shutil.disk_usage(layout.logs if layout.logs.exists() else workdir).free
+    if free < _NEARLY_FULL:
+        lines.insert(0, f"the disk holding {layout.logs.parent.relative_to(workdir)} is full ({free:,} bytes "
+                        f"free): free some space and run the same command again; finished shards are kept")
+    return lines
 
 
 def _force_ingest_if_records_missing(study: Study, workdir: Path) -> list[str]:

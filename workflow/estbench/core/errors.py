@@ -7,6 +7,7 @@ traceback.
 
 from __future__ import annotations
 
+import errno
 import sys
 from functools import wraps
 from typing import Callable
@@ -51,9 +52,30 @@ class StudyError(UserError):
                 *(f"  {line}" for line in self.problems)]
 
 
+#: ``OSError`` numbers of a full disk, and of a file or folder estbench may not write.
+_NO_SPACE = (errno.ENOSPC, errno.EDQUOT)
+_NOT_ALLOWED = (errno.EROFS, errno.EACCES, errno.EPERM)
+
+
+def environment_problem(exc: BaseException) -> str | None:
+    """One line for a full disk or a file estbench may not write; None if *exc* is
+    anything else. (DuckDB reports a full disk in its own exception type, hence the
+    message test.)"""
+    number = exc.errno if isinstance(exc, OSError) else None
+    name = getattr(exc, "filename", None)
+    if number in _NO_SPACE or "No space left on device" in str(exc):
+        return (f"no space left on the disk{f' (writing {name})' if name else ''}: free some space and "
+                f"run the same command again; finished shards are kept")
+    if number in _NOT_ALLOWED:
+        return (f"cannot use {name or 'a file'}: {exc.strerror}; estbench writes results/<study>/ and "
+                f".snakemake/ in the folder it runs in: make them writable, then run the same command again")
+    return None
+
+
 def entry_point(main: Callable[..., int]) -> Callable[..., int]:
-    """Wrap a ``main(argv=None) -> int``: user errors become their lines on stderr
-    and exit status 2, Ctrl-C exits 130, a closed output pipe exits 0."""
+    """Wrap a ``main(argv=None) -> int``: user errors, a full disk and a read-only
+    folder become one line on stderr and exit status 2, Ctrl-C exits 130, a closed
+    output pipe exits 0."""
     @wraps(main)
     def guarded(*args, **kwargs) -> int:
         try:
@@ -68,4 +90,10 @@ def entry_point(main: Callable[..., int]) -> Callable[..., int]:
         except KeyboardInterrupt:
             print("estbench: interrupted; run the same command again to resume", file=sys.stderr)
             return EXIT_INTERRUPTED
+        except Exception as exc:
+            line = environment_problem(exc)
+            if line is None:
+                raise  # a bug: it keeps its traceback
+            print(f"estbench: {line}", file=sys.stderr)
+            return EXIT_USER_ERROR
     return guarded

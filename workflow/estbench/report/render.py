@@ -11,7 +11,7 @@ from pathlib import Path
 import jinja2
 
 from estbench import __version__
-from estbench.analyse.store import open_read_only
+from estbench.analyse.store import open_read_only, reading_store
 from estbench.core.bundled import REPORT_TEMPLATES
 from estbench.core.errors import entry_point
 from estbench.core.files import atomic_path, write_text_atomically
@@ -115,13 +115,14 @@ def render(layout: ResultsLayout) -> None:
     con = open_read_only(layout.store)
     queue = FigureQueue()
     try:
-        con.execute("SET enable_progress_bar = false")
-        context = build_context(con, queue)
-        context["links"] = {name: Path(os.path.relpath(path, layout.report_html.parent)).as_posix()
-                            for name, path in (("performance", layout.performance_csv),
-                                               ("checks", layout.checks_csv))}
-        rows = report_data.performance(con)
-        write_checks_csv(con, layout.checks_csv)
+        with reading_store(layout.store):   # a damaged store: one clear line
+            con.execute("SET enable_progress_bar = false")
+            context = build_context(con, queue)
+            context["links"] = {name: Path(os.path.relpath(path, layout.report_html.parent)).as_posix()
+                                for name, path in (("performance", layout.performance_csv),
+                                                   ("checks", layout.checks_csv))}
+            rows = report_data.performance(con)
+            write_checks_csv(con, layout.checks_csv)
     finally:
         con.close()
     queue.draw()    # after closing the store: workers fork a process without DuckDB threads

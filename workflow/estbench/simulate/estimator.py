@@ -13,7 +13,10 @@ from __future__ import annotations
 import contextlib
 import functools
 import math
+import os
+import pickle
 import signal
+import sys
 import threading
 from dataclasses import dataclass, fields
 from typing import Callable, Mapping
@@ -95,26 +98,82 @@ def _classify(columns: Mapping[str, np.ndarray | None], reps: int):
     return status, message
 
 
+def failed_block(reps: int, message: str) -> BlockResult:
+    """Every replicate of a block failed with *message*."""
+    empty = {name: None for name in FIELDS}
+    empty["estimate"] = np.full(reps, np.nan)
+    return BlockResult(empty, np.full(reps, STATUS_ERROR, dtype=object), np.full(reps, message, dtype=object))
+
+
 def apply_to_block(fn: Callable, data, reps: int, kwargs: Mapping) -> BlockResult:
     """Run *fn* on one block; an exception or bad output marks the whole block.
 
-    Per-replicate failures come from ``per_replicate`` estimators, which return
-    NaN and attach their messages (see there).
+    ``sys.exit`` in the estimator counts as an exception, and what it prints goes
+    to stderr: stdout may be carrying data (``estbench query``). Per-replicate
+    failures come from ``per_replicate`` estimators, which return NaN and attach
+    their messages (see there).
     """
     try:
-        raw = fn(data, **kwargs)
+        with contextlib.redirect_stdout(sys.stderr):
+            raw = fn(data, **kwargs)
         columns = coerce(raw, reps)
-    except Exception as exc:  # errors are data: the shard carries on
-        empty = {name: None for name in FIELDS}
-        empty["estimate"] = np.full(reps, np.nan)
-        return BlockResult(empty, np.full(reps, STATUS_ERROR, dtype=object),
-                           np.full(reps, short_message(exc), dtype=object))
+    except (Exception, SystemExit) as exc:  # errors are data: the shard carries on
+        return failed_block(reps, short_message(exc))
     status, message = _classify(columns, reps)
     errors = getattr(raw, "errors", None)
     if errors:
         for i, text in errors.items():
             status[i], message[i] = STATUS_ERROR, text
     return BlockResult(columns, status, message)
+
+
+def _ended(wait_status: int) -> str:
+    """What ended a child process, from its ``waitpid`` status."""
+    code = os.waitstatus_to_exitcode(wait_status)
+    if code < 0:
+        return (f"ProcessEnded: the estimator crashed the Python process (signal "
+                f"{signal.Signals(-code).name}: {signal.strsignal(-code)})")
+    return f"ProcessEnded: the estimator ended the Python process (exit status {code})"
+
+
+def apply_in_child(fn: Callable, data, reps: int, kwargs: Mapping) -> BlockResult:
+    """``apply_to_block`` in a forked child process, for trial runs.
+
+    An estimator that ends or crashes its process (``os._exit``, a segmentation
+    fault) then fails this block instead of taking the caller down. A fork costs
+    milliseconds: fine for a trial run, too much for every block of a job, which
+    calls ``apply_to_block`` directly. Without ``os.fork``, runs in process.
+    """
+    if not hasattr(os, "fork"):
+        return apply_to_block(fn, data, reps, kwargs)
+    sys.stdout.flush()
+    sys.stderr.flush()
+    read_end, write_end = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # the child: send the result back, never return into the caller's code
+        code = 1
+        try:
+            os.close(read_end)
+            payload = pickle.dumps(apply_to_block(fn, data, reps, kwargs))
+            with os.fdopen(write_end, "wb") as pipe:
+                pipe.write(payload)
+            code = 0
+        finally:
+            sys.stderr.flush()
+            os._exit(code)
+    os.close(write_end)
+    try:
+        with os.fdopen(read_end, "rb") as pipe:
+            payload = pipe.read()
+        _, wait_status = os.waitpid(pid, 0)
+    except BaseException:  # Ctrl-C while a trial run hangs: the child goes too
+        with contextlib.suppress(ProcessLookupError, ChildProcessError):
+            os.kill(pid, signal.SIGKILL)
+            os.waitpid(pid, 0)
+        raise
+    if os.waitstatus_to_exitcode(wait_status) == 0 and payload:
+        return pickle.loads(payload)
+    return failed_block(reps, _ended(wait_status))
 
 
 class _PerReplicateEstimates(dict):
@@ -172,7 +231,7 @@ def per_replicate(fn: Callable | None = None, *, time_limit: float | None = None
             try:
                 with _time_limit(time_limit):
                     out = fn(row, **kwargs)
-            except Exception as exc:
+            except (Exception, SystemExit) as exc:
                 errors[i] = short_message(exc)
                 continue
             out = out if isinstance(out, Mapping) else {"estimate": out}

@@ -20,6 +20,7 @@ pyarrow, never duckdb, matplotlib or pandas (a test checks).
 from __future__ import annotations
 
 import argparse
+import faulthandler
 import json
 import resource
 import sys
@@ -273,4 +274,5 @@ def main(argv=None) -> int:
 
 
 if __name__ == "__main__":
+    faulthandler.enable()  # an estimator that crashes the process leaves its stack in the job's log
     sys.exit(main())

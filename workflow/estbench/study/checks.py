@@ -15,7 +15,7 @@ import numpy as np
 from estbench.simulate import plugins
 from estbench.simulate.dgms import build_dgm, spec_problems
 from estbench.simulate.dgms.common import variants
-from estbench.simulate.estimator import STATUS_ERROR, apply_to_block, short_message
+from estbench.simulate.estimator import STATUS_ERROR, apply_in_child, short_message
 from estbench.study.scenarios import Scenario, expand_study
 
 
@@ -89,7 +89,8 @@ def _estimator_problems(raw: Mapping, scenarios: list[Scenario], dirs: list[str]
                 kwargs["level"] = level
             if plugins.accepts(fn, "rng"):
                 kwargs["rng"] = np.random.default_rng(0)
-            result = apply_to_block(fn, data, PROBE_REPS, kwargs)
+            # in a child process: an estimator that crashes its process fails its trial
+            result = apply_in_child(fn, data, PROBE_REPS, kwargs)
             if all(result.status == STATUS_ERROR):
                 problems.append(f"{where}.function`: a trial run on DGM {dgm_name!r} (n = {n}) failed: "
                                 f"{result.message[0]} (check its signature f(data, **args) -> "

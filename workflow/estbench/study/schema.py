@@ -38,9 +38,12 @@ def read_yaml(path: Path | str) -> Any:
     """Parse a YAML file, turning syntax errors into one-line ``UserError``s."""
     path = Path(path)
     try:
-        text = path.read_text()
+        text = path.read_text(encoding="utf-8")
     except OSError as exc:
         raise UserError(f"cannot read study file {path}: {exc.strerror}") from None
+    except UnicodeDecodeError as exc:
+        raise UserError(f"study file {path} is not UTF-8 text: byte 0x{exc.object[exc.start]:02x} "
+                        f"at position {exc.start}") from None
     try:
         data = yaml.load(text, Loader=_StrictLoader)
     except yaml.YAMLError as exc:
