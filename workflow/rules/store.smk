@@ -10,5 +10,7 @@ rule ingest:
         str(LAYOUT.stage_log("ingest")),
     params:
         python=PYTHON,
+    threads: 4  # DuckDB's threads, at most --cores; the numbers do not depend on them
     shell:
-        "{params.python} -m estbench.analyse.store --study {input.study:q} --store {output:q} 2> {log:q}"
+        "{params.python} -m estbench.analyse.store --study {input.study:q} --store {output:q} "
+        "--threads {threads} 2> {log:q}"

@@ -196,10 +196,12 @@ def _write_derived(con, study: Study) -> None:
         con.unregister("derived_in")
 
 
-def ingest(store: Path | str, study: Study, shards: Iterable[Path | str]) -> dict:
+def ingest(store: Path | str, study: Study, shards: Iterable[Path | str], threads: int | None = None) -> dict:
     """Bring the store up to date with *shards* and recompute the measures.
 
-    Returns counts (shards added, replaced, removed and unchanged, and rows) and seconds.
+    *threads* caps DuckDB's threads (default: one per core); the results do
+    not depend on it. Returns counts (shards added, replaced, removed and
+    unchanged, and rows) and seconds.
     """
     start = time.perf_counter()
     store = Path(store)
@@ -210,7 +212,8 @@ def ingest(store: Path | str, study: Study, shards: Iterable[Path | str]) -> dic
     wanted = {str(p): p for p in shards}
     digests = {str(p): file_sha256(p) for p in shards}
     store.parent.mkdir(parents=True, exist_ok=True)
-    con = duckdb.connect(str(store), config=INGEST_SETTINGS)
+    existed = store.exists()
+    con = duckdb.connect(str(store), config=INGEST_SETTINGS | ({"threads": threads} if threads else {}))
     try:
         con.execute(_DDL)
         con.execute("BEGIN TRANSACTION")
@@ -283,10 +286,12 @@ def main(argv=None) -> int:
                                      description="Ingest a study's shards into its store (used by the workflow).")
     parser.add_argument("--study", required=True, help="the study file")
     parser.add_argument("--store", required=True, help="the DuckDB store to bring up to date")
+    parser.add_argument("--threads", type=int, default=None, help="DuckDB threads (default: one per core)")
     args = parser.parse_args(argv)
     layout = ResultsLayout.of_store(args.store)
     study = with_allocation(load_study(args.study), layout.workdir)
-    summary = ingest(layout.store, study, shard_paths(study, layout))
+    with reading_store(layout.store):
+        summary = ingest(layout.store, study, shard_paths(study, layout), threads=args.threads)
     print(json.dumps(summary), file=sys.stderr)
     return 0
 

@@ -104,9 +104,13 @@ def clear_stale_snakemake_locks(gate, snakefile_args: list[str], workdir: Path) 
     except BlockingIOError:
         return False  # another estbench run in this folder: its locks are live
     try:
-        subprocess.run([*snakefile_args, "--unlock"], cwd=workdir, capture_output=True, check=True)
+        proc = subprocess.run([*snakefile_args, "--unlock"], cwd=workdir, capture_output=True, text=True)
     finally:
         fcntl.flock(gate, fcntl.LOCK_SH)
+    if proc.returncode != 0:
+        said = (proc.stderr or proc.stdout).strip().splitlines()
+        raise UserError(f"Snakemake could not clear the locks a killed run left in {locks}: "
+                        f"{said[-1] if said else 'no message'}; remove that folder by hand if no run is alive")
     return True
 
 

@@ -29,8 +29,9 @@ CSV_TAIL = ("estimator", "target", "measure", "value", "mcse", "n_ok", "n_failed
 
 
 def fmt_number(x) -> str:
-    """Ten significant digits: far below any Monte Carlo error, and stable in the
-    last printed digit when the store's floating-point sums change order."""
+    """Ten significant digits: far below any Monte Carlo error. (Stability does not
+    rest on the rounding: the measures themselves are the same to the last bit
+    however the rows reached the store; see ``analyse.block_sums``.)"""
     if x is None:
         return ""
     return format(float(x), ".10g")
