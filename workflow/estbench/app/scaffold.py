@@ -126,6 +126,8 @@ estimators:
 reference: mean                  # relative efficiency is measured against it
 targets:                         # largest acceptable Monte Carlo SE per measure
   bias: 0.2
+# max_failed_share: 0.2          # warn, and `estbench run` exits 3, when an estimator fails on
+#                                # more than this share of a scenario's replicates (default 0.2)
 """
 
 #: The example plug-in estimator of a new project.
