@@ -115,6 +115,20 @@ def test_identical_estimators_compare_exactly():
     assert jack[("same_mean", "relative_mse")]["mcse_jackknife"] == 0.0
 
 
+def test_estimators_equal_but_for_the_last_bits_have_no_monte_carlo_error():
+    # a mean and the same mean summed in another order differ in the last bit of some
+    # estimates; the correlation is 1 up to rounding, so the MCSE of RE is 0, not ~1e-9
+    rng = np.random.default_rng(9)
+    data = 10 + 0.5 * rng.standard_normal((2000, 5))
+    mean = data.mean(axis=1)
+    reordered = np.sort(data, axis=1)[:, ::-1].sum(axis=1) / 5
+    assert 0 < np.sum(mean != reordered) < 2000          # some, not all, differ in the last bits
+    table = pa.concat_tables([arm("s", "mean", mean), arm("s", "reordered", reordered)])
+    rows = rows_of(performance_table(table, {("s", "mean"): 10.0, ("s", "reordered"): 10.0}, reference="mean"))
+    row = rows[("s", "reordered", "relative_efficiency")]
+    assert row["value"] == pytest.approx(1.0, abs=1e-12) and row["mcse"] == 0.0
+
+
 def test_sums_agree_with_numpy_to_rounding(estimates_and_truth):
     # numpy's mean and var(ddof=1) over the usable replicates of each group
     estimates, truth = estimates_and_truth

@@ -54,7 +54,8 @@ A measure whose inputs are missing is absent (no row), never zero; an
 estimator with no 'ok' replicate in a scenario has no rows there. A row
 whose inputs are present but too few (e.g. one replicate) has a null value
 or MCSE. An MCSE below 1e-12·|value| is float rounding of a zero spread and
-is reported as 0.
+is reported as 0; likewise 1 − ρ² below 64 machine epsilons (≈ 1.4e-14) in
+the MCSE of relative_efficiency, the rounding of a perfect correlation.
 
 The seed-block jackknife (Koehler, Brown & Haneuse 2009, The American
 Statistician 63:155-162) leaves out one seed block at a time; every
@@ -195,10 +196,17 @@ def _crb_efficiency(a):
     return Values(efficiency, efficiency * _sqrt(_div(2.0, n - 1)), n, np.isfinite(a["crb"]))
 
 
+#: 1 − ρ² below this is float rounding of a perfect correlation: two estimators that
+#: agree up to the last bits of each estimate (e.g. a mean and a trimmed mean that trims
+#: nothing but adds in another order) reach about 1e-15.
+_ROUNDING_OF_PERFECT_CORRELATION = 64 * np.finfo(float).eps
+
+
 def _relative_efficiency(a):
     n = a["n_pairs"]
     ratio = _div(a["var_r"], a["var_j"])
-    unexplained = np.clip(a["unexplained_jr"], 0, None)   # 1 − ρ²; |ρ| can round to just above 1
+    unexplained = a["unexplained_jr"]     # 1 − ρ²; |ρ| can also round to just above 1
+    unexplained = np.where(unexplained < _ROUNDING_OF_PERFECT_CORRELATION, 0.0, unexplained)
     return Values(ratio, 2 * ratio * _sqrt(_div(unexplained, n - 1)), n)
 
 
