@@ -153,6 +153,12 @@ def _add_estimators(cwd: Path, module: str, text: str, names) -> Path:
     return write_study(cwd, study)
 
 
+def _ctrl_c_as_in_a_terminal() -> None:
+    """In the child: Ctrl-C's default disposition. A test run started in the background
+    by a non-interactive shell inherits SIGINT ignored, and Python keeps it so."""
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def _crash_project(finished: Path, cwd: Path, body: str, when: str = SMALL_REAL_BLOCK) -> Path:
     copy_project(finished, cwd)
     return _add_estimators(cwd, "plot_crash", CRASH_MODULE.format(when=when, body=body), ["crash"])
@@ -277,7 +283,7 @@ def test_a_hanging_estimator_can_be_stopped_and_a_fixed_one_finishes(finished_ti
     before, store = shard_mtimes(tmp_path), sha256(tmp_path / "results/tiny/store.duckdb")
     run = subprocess.Popen([sys.executable, "-m", "estbench.app.cli", "run", str(path), "--cores", "2"],
                            cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                           start_new_session=True)
+                           start_new_session=True, preexec_fn=_ctrl_c_as_in_a_terminal)
     marker, deadline = tmp_path / "hanging", time.monotonic() + 120
     try:
         while not marker.exists() or len(marker.read_text().split()) < 2:  # both n = 5 jobs hang
@@ -321,7 +327,8 @@ def test_a_trial_run_that_hangs_stops_on_ctrl_c(tmp_path):
     write_study(tmp_path, tiny_study())
     path = _add_estimators(tmp_path, "plot_crash", CRASH_MODULE.format(when="True", body=HANG), ["crash"])
     check = subprocess.Popen([sys.executable, "-m", "estbench.app.cli", "check", str(path)], cwd=tmp_path,
-                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True,
+                                 preexec_fn=_ctrl_c_as_in_a_terminal)
     marker, deadline = tmp_path / "hanging", time.monotonic() + 60
     try:
         while not marker.exists():
