@@ -61,7 +61,8 @@ GROUP BY g.gid
 
 # --------------------------------------------------------------------------- moments
 
-def _ratio(a, b):
+def safe_ratio(a, b):
+    """a / b where b > 0, NaN elsewhere (no warnings): means, variances and shares of counts."""
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(b > 0, a / np.where(b > 0, b, 1), np.nan)
 
@@ -76,12 +77,12 @@ class Moments:
 
     @property
     def mean(self) -> np.ndarray:
-        return _ratio(self.total, self.count)
+        return safe_ratio(self.total, self.count)
 
     @property
     def var(self) -> np.ndarray:
         """Sample variance M2/(count − 1); NaN below two values."""
-        return _ratio(self.m2, self.count - 1.0)
+        return safe_ratio(self.m2, self.count - 1.0)
 
     def take(self, index: np.ndarray) -> Moments:
         return Moments(self.count[index], self.total[index], self.m2[index])
@@ -103,7 +104,7 @@ def segment_moments(seg: np.ndarray, n: int, x: np.ndarray, valid: np.ndarray,
     with np.errstate(invalid="ignore"):
         count = _sums(seg, n, valid.astype(float)) if count is None else count
         total = _sums(seg, n, np.where(valid, x, 0.0))
-        dev = np.where(valid, x - _ratio(total, count)[seg], 0.0)
+        dev = np.where(valid, x - safe_ratio(total, count)[seg], 0.0)
     return Moments(count, total, _sums(seg, n, dev * dev))
 
 
@@ -120,7 +121,7 @@ def combine(group: np.ndarray, n: int, blocks: Moments) -> Moments:
     """Group moments from block moments; rows sorted by group, then block."""
     count, total = _sums(group, n, blocks.count), _sums(group, n, blocks.total)
     with np.errstate(invalid="ignore"):
-        dev = np.where(blocks.count > 0, blocks.mean - _ratio(total, count)[group], 0.0)
+        dev = np.where(blocks.count > 0, blocks.mean - safe_ratio(total, count)[group], 0.0)
     return Moments(count, total, _sums(group, n, blocks.m2 + blocks.count * dev * dev))
 
 

@@ -84,7 +84,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from estbench.analyse.block_sums import Sums, block_sums, centre_hits
+from estbench.analyse.block_sums import Sums, block_sums, centre_hits, safe_ratio
 from estbench.analyse.mcse import (Blocks, block_heterogeneity, is_open_unit, is_positive_number, jackknife_se,
                    replicates_for_target, round_up)
 
@@ -122,19 +122,14 @@ def _sqrt(x):
         return np.sqrt(x)
 
 
-def _div(a, b):
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(b > 0, a / np.where(b > 0, b, 1), np.nan)
-
-
 def _mean_of(mean, var, n):
     """A mean over n replicates and its MCSE √(var/n)."""
-    return Values(mean, _sqrt(_div(var, n)), n)
+    return Values(mean, _sqrt(safe_ratio(var, n)), n)
 
 
 def _share_of(share, n):
     """A share of n replicates and its binomial MCSE √(P(1 − P)/n)."""
-    return Values(share, _sqrt(_div(share * (1 - share), n)), n)
+    return Values(share, _sqrt(safe_ratio(share * (1 - share), n)), n)
 
 
 def _bias(a):
@@ -151,18 +146,18 @@ def _relative_bias(a):
 
 def _empirical_se(a):
     empirical_se = _sqrt(a["var_err"])
-    return Values(empirical_se, _div(empirical_se, _sqrt(2 * (a["n_ok"] - 1.0))), a["n_ok"])
+    return Values(empirical_se, safe_ratio(empirical_se, _sqrt(2 * (a["n_ok"] - 1.0))), a["n_ok"])
 
 
 def _model_se(a):
     n, mean_se2 = a["n_se"], a["mean_se2"]
-    return Values(_sqrt(mean_se2), _sqrt(_div(a["var_se2"], 4 * n * mean_se2)), n)
+    return Values(_sqrt(mean_se2), _sqrt(safe_ratio(a["var_se2"], 4 * n * mean_se2)), n)
 
 
 def _model_se_relative_error(a):
     n, model_se2 = a["n_se"], a["mean_se2"]
-    ratio = _sqrt(_div(model_se2, a["var_est_se"]))
-    mcse = 100 * ratio * _sqrt(_div(a["var_se2"], 4 * n * model_se2 ** 2) + _div(1.0, 2 * (n - 1)))
+    ratio = _sqrt(safe_ratio(model_se2, a["var_est_se"]))
+    mcse = 100 * ratio * _sqrt(safe_ratio(a["var_se2"], 4 * n * model_se2 ** 2) + safe_ratio(1.0, 2 * (n - 1)))
     return Values(100 * (ratio - 1), mcse, n)
 
 
@@ -192,8 +187,8 @@ def _rejection_rate(a):
 
 def _crb_efficiency(a):
     n = a["n_ok"]
-    efficiency = _div(a["crb"], a["var_err"])
-    return Values(efficiency, efficiency * _sqrt(_div(2.0, n - 1)), n, np.isfinite(a["crb"]))
+    efficiency = safe_ratio(a["crb"], a["var_err"])
+    return Values(efficiency, efficiency * _sqrt(safe_ratio(2.0, n - 1)), n, np.isfinite(a["crb"]))
 
 
 #: 1 − ρ² below this is float rounding of a perfect correlation: two estimators that
@@ -204,14 +199,14 @@ _ROUNDING_OF_PERFECT_CORRELATION = 64 * np.finfo(float).eps
 
 def _relative_efficiency(a):
     n = a["n_pairs"]
-    ratio = _div(a["var_r"], a["var_j"])
+    ratio = safe_ratio(a["var_r"], a["var_j"])
     unexplained = a["unexplained_jr"]     # 1 − ρ²; |ρ| can also round to just above 1
     unexplained = np.where(unexplained < _ROUNDING_OF_PERFECT_CORRELATION, 0.0, unexplained)
-    return Values(ratio, 2 * ratio * _sqrt(_div(unexplained, n - 1)), n)
+    return Values(ratio, 2 * ratio * _sqrt(safe_ratio(unexplained, n - 1)), n)
 
 
 def _relative_mse(a):
-    return Values(_div(a["mse_r"], a["mse_j"]), a["jackknife_relative_mse"], a["n_pairs"])
+    return Values(safe_ratio(a["mse_r"], a["mse_j"]), a["jackknife_relative_mse"], a["n_pairs"])
 
 
 def _bias_diff(a):
@@ -423,7 +418,7 @@ def _single_rows(con, estimates: str, sums: Sums) -> tuple[dict, dict]:
         "mean_err": t["err"].mean, "var_err": t["err"].var, "mse": t["sqerr"].mean, "var_sqerr": t["sqerr"].var,
         "n_se": t["se2"].count, "mean_se2": t["se2"].mean, "var_se2": t["se2"].var,
         "var_est_se": t["estimate_se"].var,
-        "n_ci": t["covers"].count, "coverage": t["covers"].mean, "be_coverage": _div(hits, t["covers"].count),
+        "n_ci": t["covers"].count, "coverage": t["covers"].mean, "be_coverage": safe_ratio(hits, t["covers"].count),
         "mean_width": t["width"].mean, "var_width": t["width"].var,
         "n_p": t["rejects"].count, "rejection": t["rejects"].mean,
     }, keep)
@@ -443,13 +438,13 @@ def _paired_rows(sums: Sums) -> tuple[dict, dict]:
     keep = t["matched"].count > 0
     j, r, d = t["est_j"], t["est_r"], c[("est_j", "est_r")]
     with np.errstate(invalid="ignore", divide="ignore"):
-        unexplained = 1 - _div(d * d, j.m2 * r.m2)        # 1 − ρ², exactly 0 for identical estimators
+        unexplained = 1 - safe_ratio(d * d, j.m2 * r.m2)        # 1 − ρ², exactly 0 for identical estimators
     paired = _keyed_rows(g.scenario, g.estimator, {
         "n_matched": t["matched"].count, "n_rows_j": rows_of, "n_rows_r": np.where(reference >= 0, rows_of[reference], np.nan),
         "n_pairs": j.count, "mean_j": j.mean, "mean_r": r.mean, "var_j": j.var, "var_r": r.var,
         "unexplained_jr": unexplained,
         "mse_j": t["sq_j"].mean, "mse_r": t["sq_r"].mean, "var_sqerr_j": t["sq_j"].var,
-        "var_sqerr_r": t["sq_r"].var, "cov_sqerr": _div(c[("sq_j", "sq_r")], t["sq_j"].count - 1.0),
+        "var_sqerr_r": t["sq_r"].var, "cov_sqerr": safe_ratio(c[("sq_j", "sq_r")], t["sq_j"].count - 1.0),
         "mean_dbias": t["dbias"].mean, "var_dbias": t["dbias"].var,
         "mean_dmse": t["dmse"].mean, "var_dmse": t["dmse"].var,
         "n_pairs_ci": t["dcover"].count, "mean_dcover": t["dcover"].mean, "var_dcover": t["dcover"].var,
@@ -485,7 +480,7 @@ def _aggregate(con, estimates: str, truth: str, *, reference: str | None = None,
 
     blocks, keys = _blocks(block_rows)
     mse_loo = blocks.leave_one_out_mean(block_rows["mse"])
-    var_loo = _div(blocks.leave_one_out_comoment(block_rows["mean_err"], block_rows["mean_err"],
+    var_loo = safe_ratio(blocks.leave_one_out_comoment(block_rows["mean_err"], block_rows["mean_err"],
                                                  _within(blocks, block_rows["var_err"])),
                    blocks.replicates()[blocks.group] - blocks.m - 1)
     for name, loo in (("bias", blocks.leave_one_out_mean(block_rows["mean_err"])), ("mse", mse_loo),
@@ -503,8 +498,8 @@ def _aggregate(con, estimates: str, truth: str, *, reference: str | None = None,
         pblocks, pkeys = _blocks(pb)
         s_jj = pblocks.leave_one_out_comoment(pb["mean_j"], pb["mean_j"], _within(pblocks, pb["var_j"]))
         s_rr = pblocks.leave_one_out_comoment(pb["mean_r"], pb["mean_r"], _within(pblocks, pb["var_r"]))
-        ratio_loo = {"relative_efficiency": _div(s_rr, s_jj),
-                     "relative_mse": _div(pblocks.leave_one_out_mean(pb["mse_r"]),
+        ratio_loo = {"relative_efficiency": safe_ratio(s_rr, s_jj),
+                     "relative_mse": safe_ratio(pblocks.leave_one_out_mean(pb["mse_r"]),
                                           pblocks.leave_one_out_mean(pb["mse_j"]))}
         for name, loo in ratio_loo.items():
             paired[f"jackknife_{name}"] = _align(pkeys, jackknife_se(pblocks, loo), paired)
@@ -666,12 +661,12 @@ JACKKNIFE_SCHEMA = pa.schema([
 def _formula_mcse(measure: Measure, a: dict[str, np.ndarray], v: Values) -> np.ndarray:
     """The closed-form MCSE of a jackknifed measure; the delta method for rmse and relative_mse."""
     if measure.name == "rmse":            # MCSE(MSE)/(2·RMSE)
-        return _div(_mse(a).mcse, 2 * v.value)
+        return safe_ratio(_mse(a).mcse, 2 * v.value)
     if measure.name == "relative_mse":    # a ratio of two correlated means
         mse_r, mse_j = a["mse_r"], a["mse_j"]
-        rel = _div(a["var_sqerr_r"], mse_r ** 2) + _div(a["var_sqerr_j"], mse_j ** 2) \
-            - 2 * _div(a["cov_sqerr"], mse_r * mse_j)
-        return v.value * _sqrt(_div(rel, a["n_pairs"]))
+        rel = safe_ratio(a["var_sqerr_r"], mse_r ** 2) + safe_ratio(a["var_sqerr_j"], mse_j ** 2) \
+            - 2 * safe_ratio(a["cov_sqerr"], mse_r * mse_j)
+        return v.value * _sqrt(safe_ratio(rel, a["n_pairs"]))
     return v.mcse
 
 
