@@ -437,10 +437,10 @@ def _paired_rows(sums: Sums) -> tuple[dict, dict]:
     reference = g.reference
     keep = t["matched"].count > 0
     j, r, d = t["est_j"], t["est_r"], c[("est_j", "est_r")]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        unexplained = 1 - safe_ratio(d * d, j.m2 * r.m2)        # 1 − ρ², exactly 0 for identical estimators
+    unexplained = 1 - safe_ratio(d * d, j.m2 * r.m2)        # 1 − ρ², exactly 0 for identical estimators
     paired = _keyed_rows(g.scenario, g.estimator, {
-        "n_matched": t["matched"].count, "n_rows_j": rows_of, "n_rows_r": np.where(reference >= 0, rows_of[reference], np.nan),
+        "n_matched": t["matched"].count, "n_rows_j": rows_of,
+        "n_rows_r": np.where(reference >= 0, rows_of[reference], np.nan),
         "n_pairs": j.count, "mean_j": j.mean, "mean_r": r.mean, "var_j": j.var, "var_r": r.var,
         "unexplained_jr": unexplained,
         "mse_j": t["sq_j"].mean, "mse_r": t["sq_r"].mean, "var_sqerr_j": t["sq_j"].var,
