@@ -28,7 +28,7 @@ def welch(data, level=0.95, null_value=0.0):
     with np.errstate(invalid="ignore", divide="ignore"):
         a1, a0 = ss1 / (n1 - 1) / n1, ss0 / (n0 - 1) / n0
         df = (a1 + a0) ** 2 / (a1 ** 2 / (n1 - 1) + a0 ** 2 / (n0 - 1))
-    return wald_fields(diff, np.sqrt(a1 + a0), level, null_value, stats.t(df))
+    return wald_fields(diff, np.sqrt(a1 + a0), level, null_value, stats.t, df)
 
 
 def pooled(data, level=0.95, null_value=0.0):
@@ -37,7 +37,7 @@ def pooled(data, level=0.95, null_value=0.0):
     with np.errstate(invalid="ignore", divide="ignore"):
         df = n1 + n0 - 2
         se = np.sqrt((ss1 + ss0) / df * (1 / n1 + 1 / n0))
-    return wald_fields(diff, se, level, null_value, stats.t(df))
+    return wald_fields(diff, se, level, null_value, stats.t, df)
 
 
 def ancova(data, se="model", level=0.95, null_value=0.0):

@@ -18,7 +18,7 @@ import functools
 import numpy as np
 from scipy import stats
 
-from _inference import check_level, replicates, wald_fields
+from _inference import check_level, replicates, sum_of_squares, wald_fields
 
 #: Elements of a float64 work array per chunk of replicates (32 MB), where an
 #: estimator needs more than the data's own size per replicate.
@@ -35,12 +35,18 @@ def mean(x, level=0.95, null_value=0.0):
     x : array (reps, n)
     level : confidence level of the interval.
     null_value : value of the mean under the null hypothesis of the t-test.
+
+    Returns
+    -------
+    dict of estimate, se, ci_low, ci_high, p_value; se = s/sqrt(n), s the SD
+    with divisor n-1 (NaN at n = 1).
     """
     x = replicates(x)
     n = x.shape[1]
+    centre = x.mean(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
-        se = x.std(axis=1, ddof=1) / np.sqrt(n)
-    return wald_fields(x.mean(axis=1), se, level, null_value, stats.t(n - 1))
+        se = np.sqrt(sum_of_squares(x, centre) / (n - 1)) / np.sqrt(n)
+    return wald_fields(centre, se, level, null_value, stats.t, n - 1)
 
 
 def median(x, level=0.95, null_value=0.0):
@@ -53,11 +59,18 @@ def median(x, level=0.95, null_value=0.0):
     (n < 6 at 95%) it is (-inf, inf). The p-value is the exact two-sided sign
     test, an observation equal to ``null_value`` counting one half each way. No SE:
     every standard one needs a density estimate at the median.
+
+    One partition of each row serves the estimate and the interval; the
+    estimate is ``np.median``'s, bit for bit (NaN for a row holding a NaN).
     """
     x = replicates(x)
     n = x.shape[1]
-    return {"estimate": np.median(x, axis=1),
-            **_rank_inference(x, stats.binom.cdf(np.arange(n + 1), n, 0.5), level, null_value)}
+    out = _rank_inference(x, _sign_cdf(n), level, null_value, also=[(n - 1) // 2, n // 2, n - 1])
+    ordered = out.pop("ordered")
+    estimate = _middle(ordered, n)
+    last = ordered[:, n - 1]                  # the row's NaN if it has one: NaN sorts last
+    np.copyto(estimate, last, where=np.isnan(last))
+    return {"estimate": estimate, **out}
 
 
 def trimmed_mean(x, proportion=0.1, level=0.95, null_value=0.0):
@@ -67,14 +80,15 @@ def trimmed_mean(x, proportion=0.1, level=0.95, null_value=0.0):
     at the same g, with a t(n - 2g - 1) interval and test (Tukey & McLaughlin
     1963, as given by Wilcox 2012, Introduction to Robust Estimation and
     Hypothesis Testing, from memory; the same as ``scipy.stats.mstats.trimmed_mean_ci``).
+    The estimate is ``scipy.stats.trim_mean``'s; one partition of each row
+    serves estimate and SE.
     """
     x = replicates(x)
-    g, winsorized = _winsorize(x, proportion)
+    g, estimate, _, winsorized_ss = _trim_and_winsorize(x, proportion)
     n = x.shape[1]
     with np.errstate(invalid="ignore", divide="ignore"):
-        se = winsorized.std(axis=1, ddof=1) / ((1 - 2 * proportion) * np.sqrt(n))
-    return wald_fields(stats.trim_mean(x, proportion, axis=1), se, level, null_value,
-                       stats.t(n - 2 * g - 1))
+        se = np.sqrt(winsorized_ss / (n - 1)) / ((1 - 2 * proportion) * np.sqrt(n))
+    return wald_fields(estimate, se, level, null_value, stats.t, n - 2 * g - 1)
 
 
 def winsorized_mean(x, proportion=0.1, level=0.95, null_value=0.0):
@@ -82,14 +96,15 @@ def winsorized_mean(x, proportion=0.1, level=0.95, null_value=0.0):
 
     SE = s_w (n - 1) / ((n - 2g - 1) sqrt(n)), s_w the SD of the Winsorized
     sample, with a t(n - 2g - 1) interval and test (Dixon & Tukey 1968, as given
-    by Wilcox 2012, Introduction to Robust Estimation, section 3.3.3).
+    by Wilcox 2012, Introduction to Robust Estimation, section 3.3.3). One
+    partition of each row.
     """
     x = replicates(x)
-    g, winsorized = _winsorize(x, proportion)
+    g, _, estimate, winsorized_ss = _trim_and_winsorize(x, proportion)
     n = x.shape[1]
     with np.errstate(invalid="ignore", divide="ignore"):
-        se = winsorized.std(axis=1, ddof=1) * (n - 1) / ((n - 2 * g - 1) * np.sqrt(n))
-    return wald_fields(winsorized.mean(axis=1), se, level, null_value, stats.t(n - 2 * g - 1))
+        se = np.sqrt(winsorized_ss / (n - 1)) * (n - 1) / ((n - 2 * g - 1) * np.sqrt(n))
+    return wald_fields(estimate, se, level, null_value, stats.t, n - 2 * g - 1)
 
 
 def hodges_lehmann(x, level=0.95, null_value=0.0):
@@ -118,8 +133,7 @@ def hodges_lehmann(x, level=0.95, null_value=0.0):
     for rows in _chunks(len(x), len(left)):
         walsh = (x[rows, left] + x[rows, right]) / 2
         chunk = _rank_inference(walsh, cdf, level, null_value, also=middle)
-        ordered = chunk.pop("ordered")
-        out["estimate"][rows] = (ordered[:, middle[0]] + ordered[:, middle[1]]) / 2
+        out["estimate"][rows] = _middle(chunk.pop("ordered"), len(left))
         for name, value in chunk.items():
             out[name][rows] = value
     return out
@@ -157,7 +171,7 @@ def huber(x, k=1.345, level=0.95, null_value=0.0, max_iter=100, tol=1e-10):
     inside = (np.abs(r) < k).mean(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         se = scale * np.sqrt((r ** 2).sum(axis=1) / (n - 1) / n) / inside
-    return wald_fields(mu, se, level, null_value, stats.t(n - 1))
+    return wald_fields(mu, se, level, null_value, stats.t, n - 1)
 
 
 def bootstrap_mean(x, rng, level=0.95, null_value=0.0, B=999):
@@ -187,14 +201,41 @@ def bootstrap_mean(x, rng, level=0.95, null_value=0.0, B=999):
             "ci_high": high, "p_value": np.minimum(1, 2 * np.minimum(below, above) / B)}
 
 
-def _winsorize(x, proportion):
-    """g = floor(proportion n) and ``x`` with each row clipped to [x_(g+1), x_(n-g)]."""
+def _trim_and_winsorize(x, proportion):
+    """The trimmed and the Winsorized mean of each row, from one partition.
+
+    Returns g = floor(proportion n); the trimmed mean, i.e. the mean of ranks
+    g..n-1-g (0-based) of the row partitioned at ranks g and n-1-g, everything
+    between them lying between them (the partition ``scipy.stats.trim_mean``
+    makes, so its numbers bit for bit); and the mean and the sum of squared
+    deviations of the row Winsorized at g, i.e. clipped to [x_(g+1), x_(n-g)]
+    (in the partitioned copy, in place). A row holding a NaN gets a NaN trimmed
+    mean, as from ``scipy.stats.trim_mean``: the NaN survives the clip, so the
+    Winsorized mean marks the row without another pass (without a NaN it is NaN
+    only when the clipped row holds both infinities, and then so is the
+    trimmed mean).
+    """
     if not 0 <= proportion < 0.5:
         raise ValueError(f"`proportion` must be in [0, 0.5), got {proportion!r}.")
     n = x.shape[1]
     g = int(proportion * n)
-    bounds = np.partition(x, [g, n - 1 - g], axis=1)
-    return g, np.clip(x, bounds[:, g:g + 1], bounds[:, n - 1 - g:n - g])
+    ordered = np.partition(x, [g, n - 1 - g], axis=1)
+    trimmed = ordered[:, g:n - g].mean(axis=1)
+    np.clip(ordered, ordered[:, [g]], ordered[:, [n - 1 - g]], out=ordered)
+    winsorized = ordered.mean(axis=1)
+    np.copyto(trimmed, winsorized, where=np.isnan(winsorized))
+    return g, trimmed, winsorized, sum_of_squares(ordered, winsorized, overwrite=True)
+
+
+def _middle(ordered, m):
+    """Median of each row of ``ordered`` (length m, partitioned at ranks (m-1)//2 and m//2).
+
+    The middle value, or the mean of the two middle values, with ``np.median``'s
+    arithmetic to the bit: its sums start from +0.0, so a middle of -0.0 gives 0.0.
+    """
+    if m % 2:
+        return 0.0 + ordered[:, m // 2]
+    return (0.0 + ordered[:, m // 2 - 1] + ordered[:, m // 2]) / 2
 
 
 def _rank_inference(values, cdf, level, null_value, also=()):
@@ -216,7 +257,9 @@ def _rank_inference(values, cdf, level, null_value, also=()):
     ordered = np.partition(values, ranks, axis=1) if ranks else values
     out = {"ci_low": ordered[:, k - 1] if k else np.full(reps, -np.inf),
            "ci_high": ordered[:, m - k] if k else np.full(reps, np.inf)}
-    count = (values > null_value).sum(axis=1) + 0.5 * (values == null_value).sum(axis=1)
+    # int32 counters: about 1.5 times as fast as the default int64 sum of booleans
+    count = ((values > null_value).sum(axis=1, dtype=np.int32)
+             + 0.5 * (values == null_value).sum(axis=1, dtype=np.int32))
     at_most = cdf[np.floor(count).astype(int)]
     above = np.ceil(count).astype(int) - 1
     at_least = 1 - np.where(above >= 0, cdf[np.maximum(above, 0)], 0.0)
@@ -224,6 +267,14 @@ def _rank_inference(values, cdf, level, null_value, also=()):
     if also:
         out["ordered"] = ordered
     return out
+
+
+@functools.lru_cache(maxsize=16)
+def _sign_cdf(n):
+    """Binomial(n, 1/2) cdf on 0..n, the null law of the sign statistic (cached per n)."""
+    cdf = stats.binom.cdf(np.arange(n + 1), n, 0.5)
+    cdf.setflags(write=False)
+    return cdf
 
 
 @functools.lru_cache(maxsize=16)
