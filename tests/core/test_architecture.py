@@ -76,6 +76,9 @@ def test_a_simulation_job_imports_no_store_plotting_or_dataframe_library(tmp_pat
     study = study_from_mapping(tiny_study(), source=write_study(tmp_path, tiny_study()))
     key, first = jobs.job_keys(study)[0]
     record = study.layout(tmp_path).job_record(key, first)
+    spec = study.layout(tmp_path).job_spec(key, first)
+    spec.parent.mkdir(parents=True)
+    spec.write_text(jobs.job_spec_json(study, key, first))
     probe = ("import runpy, sys\n"
              "sys.argv[0] = 'estbench.simulate.job'\n"
              "try:\n"
@@ -84,7 +87,7 @@ def test_a_simulation_job_imports_no_store_plotting_or_dataframe_library(tmp_pat
              "    assert not exc.code, exc.code\n"
              "print(' '.join(sorted({m.split('.')[0] for m in sys.modules} & {'duckdb', 'matplotlib', 'pandas', "
              "'jinja2', 'snakemake'})) or 'none')\n")
-    args = ["--spec", jobs.job_spec_json(study, key, first),
+    args = ["--spec", str(spec.relative_to(tmp_path)),
             *[a for d in study.search_dirs for a in ("--search-dir", d)],
             "--record", str(record.relative_to(tmp_path))]
     proc = subprocess.run([sys.executable, "-c", probe, *args], cwd=tmp_path, capture_output=True, text=True)
@@ -135,8 +138,8 @@ def test_every_bundled_file_is_there():
 ENTRY_POINTS = {
     "estbench": (["check", "nope.yaml"], "estbench: cannot read study file"),
     "estbench.app.cli": (["query", "study.yaml", "SELECT 1"], "estbench: no store at"),
-    "estbench.simulate.job": (["--spec", "{not json", "--record", "results/s/jobs/0123456789abcdef/0.json"],
-                              "estbench: `--spec`: must be a job spec in JSON"),
+    "estbench.simulate.job": (["--spec", "nope.json", "--record", "results/s/jobs/0123456789abcdef/0.json"],
+                              "estbench: `--spec`: cannot read the job spec nope.json"),
     "estbench.analyse.store": (["--study", "nope.yaml", "--store", "results/s/store.duckdb"],
                                "estbench: cannot read study file"),
     "estbench.report.render": (["--store", "results/s/store.duckdb"], "estbench: no store at"),

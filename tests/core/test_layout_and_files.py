@@ -15,6 +15,7 @@ def test_layout_spells_every_path_under_results_of_the_study():
     assert layout.store == layout.root / "store.duckdb"
     assert layout.shard("0123456789abcdef", "mean", 40) == layout.root / "shards/0123456789abcdef/mean/40.parquet"
     assert layout.job_record("0123456789abcdef", 40) == layout.root / "jobs/0123456789abcdef/40.json"
+    assert layout.job_spec("0123456789abcdef", 40) == layout.root / "specs/0123456789abcdef/40.json"
     assert layout.job_log("{scenario}", "{first_block}") == layout.root / "logs/jobs/{scenario}/{first_block}.log"
     assert ResultsLayout.of_store(layout.store) == layout
 
@@ -23,7 +24,6 @@ def test_layout_finds_itself_from_a_shard_or_a_job_record():
     layout = ResultsLayout.of("lab", "w")
     shard = layout.shard("0123456789abcdef", "median", 20)
     assert ResultsLayout.of_shard(shard) == layout
-    assert layout.job_record_of_shard(shard) == layout.job_record("0123456789abcdef", 20)
     assert ResultsLayout.of_job_record(layout.job_record("0123456789abcdef", 20)) == layout
     with pytest.raises(ValueError, match="not a shard path"):
         ResultsLayout.of_shard(Path("w/results/lab/elsewhere/0123456789abcdef/median/20.parquet"))

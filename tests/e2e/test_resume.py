@@ -89,6 +89,20 @@ def test_sigkill_at_any_stage_then_rerun_gives_identical_results(tmp_path, unint
     assert csv_text == uninterrupted[1]  # byte-identical measures
 
 
+def test_a_packed_job_killed_midway_keeps_its_finished_pieces(tmp_path, uninterrupted):
+    """All 6 pieces in one job (values_per_job): killed after two pieces, the rerun keeps
+    their shards as they are, and the results equal the one-job-per-piece reference."""
+    path = _study(tmp_path, values_per_job=10**9)
+    proc = _start(tmp_path, path)
+    _kill_when(proc, lambda: len(_shards(tmp_path)) >= 2 * 3)  # two pieces x three estimators
+    kept = {p: p.stat().st_mtime_ns for p in _shards(tmp_path)}
+    assert 6 <= len(kept) < 18 and len(list((tmp_path / "results/tiny/jobs").rglob("*.json"))) == 0
+    run_cli("run", path, "--cores", "2", cwd=tmp_path, check=True)
+    assert all(p.stat().st_mtime_ns == mtime for p, mtime in kept.items())
+    assert len(_shards(tmp_path)) == 18 and len(list((tmp_path / "results/tiny/jobs").rglob("*.json"))) == 1
+    assert _outputs(tmp_path, path) == uninterrupted
+
+
 def test_second_concurrent_run_is_refused(tmp_path):
     path = _study(tmp_path)
     first = _start(tmp_path, path)

@@ -167,11 +167,11 @@ def test_per_replicate_time_limit_and_structured_data():
 
 
 def _job_files(study, workdir, first_block=0):
-    """Run the job of scenario 0 at *first_block* through the engine, as the workflow does."""
-    from estbench.simulate.job import run_job, shards_of_job
-    job = jobs.job_spec(study, study.scenarios[0].key, first_block)
-    outputs = shards_of_job(study.layout(workdir), job)
-    return run_job(job, study.search_dirs, outputs), outputs
+    """Run the piece of scenario 0 at *first_block* through the engine, as a job does."""
+    from estbench.simulate.job import run_piece, shards_of_piece
+    piece = jobs.piece_spec(study, study.scenarios[0].key, first_block)
+    outputs = shards_of_piece(study.layout(workdir), piece)
+    return run_piece(piece, study.search_dirs, outputs), outputs
 
 
 def _fingerprint(path):

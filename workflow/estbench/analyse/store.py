@@ -25,7 +25,7 @@ from estbench.core.layout import ResultsLayout
 from estbench.simulate.dgms import build_dgm
 from estbench.simulate.shard import SHARD_SCHEMA, ShardProblem, estimator_code_hash, verify_shard
 from estbench.study.allocation import with_allocation
-from estbench.study.jobs import shard_paths
+from estbench.study.jobs import job_of_piece, shard_paths
 from estbench.study.load import load_study
 from estbench.study.model import Study
 
@@ -127,12 +127,14 @@ def open_read_only(store: Path | str, config: Mapping | None = None) -> duckdb.D
 INGEST_SETTINGS = {"memory_limit": "256MB", "preserve_insertion_order": False}
 
 
-def _send_back(path: Path, problem: str) -> UserError:
-    """Remove a bad or missing shard and its job's record, so the next run recomputes
-    it; list it in the recompute marker; return the error to raise."""
+def _send_back(path: Path, problem: str, study: Study) -> UserError:
+    """Remove a bad or missing shard and the record of the job that writes it, so the
+    next run recomputes it; list it in the recompute marker; return the error to raise."""
     layout = ResultsLayout.of_shard(path)
     path.unlink(missing_ok=True)
-    layout.job_record_of_shard(path).unlink(missing_ok=True)
+    job = job_of_piece(study).get((path.parent.parent.name, int(path.stem)))
+    if job is not None:
+        layout.job_record(*job).unlink(missing_ok=True)
     with open(layout.recompute_marker, "a") as fh:
         fh.write(f"{path}\t{problem}\n")
     return UserError(f"shard {path} {problem}; it was removed and will be recomputed on the next run")
@@ -145,7 +147,7 @@ def _check_shard(path: Path, study: Study) -> dict:
         if meta["block_size"] != study.block_size:
             raise ShardProblem(f"has block_size {meta['block_size']}, the study {study.block_size}")
     except ShardProblem as exc:
-        raise _send_back(path, str(exc)) from None
+        raise _send_back(path, str(exc), study) from None
     return meta
 
 
@@ -208,7 +210,7 @@ def ingest(store: Path | str, study: Study, shards: Iterable[Path | str], thread
     shards = [Path(p) for p in shards]
     for path in shards:
         if not path.exists():
-            raise _send_back(path, "is missing")
+            raise _send_back(path, "is missing", study)
     wanted = {str(p): p for p in shards}
     digests = {str(p): file_sha256(p) for p in shards}
     store.parent.mkdir(parents=True, exist_ok=True)

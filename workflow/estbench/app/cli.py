@@ -50,12 +50,10 @@ def _load(args):
 
 def cmd_check(args) -> int:
     study = _load(args)
-    from estbench.study.jobs import job_keys
-    n_jobs = len(job_keys(study))
     print(f"study {study.name!r} is valid: {len(study.dgms)} DGM(s), {len(study.scenarios)} scenario(s), "
           f"{len(study.estimators)} estimator(s), {study.replicates_run} replicates per scenario "
-          f"({study.n_blocks} seed block(s) of {study.block_size}), {n_jobs} simulation job(s), "
-          f"{n_jobs * len(study.estimators)} shard(s)")
+          f"({study.n_blocks} seed block(s) of {study.block_size}), {len(study.jobs)} simulation job(s), "
+          f"{len(study.pieces) * len(study.estimators)} shard(s)")
     if study.n_blocks < JACKKNIFE_MIN_BLOCKS:
         print(f"estbench: warning: each scenario has {study.n_blocks} seed block(s); the jackknife MCSEs "
               f"(rmse, relative_mse) need at least {JACKKNIFE_MIN_BLOCKS}: lower `block_size` or raise "

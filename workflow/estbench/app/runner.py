@@ -117,10 +117,10 @@ def clear_stale_snakemake_locks(gate, snakefile_args: list[str], workdir: Path) 
 def remove_bad_shards(study: Study, workdir: Path, plans: list[ShardPlan]) -> list[str]:
     """Delete every damaged shard (the quick check of ``shard_plans``), and the record
     of each job with a damaged or missing shard, so the job runs again."""
-    layout, removed = study.layout(workdir), []
+    layout, removed, job_of = study.layout(workdir), [], jobs.job_of_piece(study)
     for plan in plans:
         if plan.missing or plan.damaged:
-            layout.job_record(plan.scenario, plan.first_block).unlink(missing_ok=True)
+            layout.job_record(*job_of[(plan.scenario, plan.first_block)]).unlink(missing_ok=True)
         if plan.damaged:
             plan.path.unlink(missing_ok=True)
             removed.append(f"{plan.path.relative_to(workdir)} {plan.reason.removeprefix(DAMAGED)}")

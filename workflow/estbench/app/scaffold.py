@@ -128,6 +128,8 @@ targets:                         # largest acceptable Monte Carlo SE per measure
   bias: 0.2
 # max_failed_share: 0.2          # warn, and `estbench run` exits 3, when an estimator fails on
 #                                # more than this share of a scenario's replicates (default 0.2)
+# values_per_job: auto           # values (replicates x n) one job draws; raise it on a cluster
+#                                # so each job computes for minutes (docs/cluster.md)
 """
 
 #: The example plug-in estimator of a new project.

@@ -41,26 +41,25 @@ class ShardPlan:
 
 
 def shard_plans(study: Study, workdir: Path | str = ".") -> list[ShardPlan]:
-    """Every shard of the study with its state on disk."""
+    """Every shard of the study with its state on disk, piece by piece."""
     layout, plans = study.layout(workdir), []
     codes = {e.function: estimator_code_hash(e.function, study.search_dirs) for e in study.estimators.values()}
-    for scenario, first in jobs.job_keys(study):
-        spec = jobs.job_spec(study, scenario, first)
-        outputs = {e: layout.shard(scenario, e, first) for e in study.estimators}
+    for piece in study.pieces:
+        spec = jobs.piece_spec(study, *piece.key)
+        outputs = {e: layout.shard(piece.scenario, e, piece.first_block) for e in study.estimators}
         for task in shard_tasks(spec, study.search_dirs, outputs, codes):
-            plans.append(ShardPlan(scenario, task.name, first, spec["n_blocks"] * spec["block_size"],
-                                   task.state.reason, task.out))
+            plans.append(ShardPlan(piece.scenario, task.name, piece.first_block,
+                                   piece.n_blocks * study.block_size, task.state.reason, task.out))
     return plans
 
 
 def pending_jobs(study: Study, workdir: Path | str = ".",
                  plans: list[ShardPlan] | None = None) -> dict[tuple[str, int], int]:
-    """(scenario, first block) -> replicates of every job the next run will run:
-    those with a shard to compute or without a record. *plans*: ``shard_plans``
-    of the study, if already at hand."""
-    layout, out = study.layout(workdir), {}
-    for plan in shard_plans(study, workdir) if plans is None else plans:
-        key = (plan.scenario, plan.first_block)
-        if plan.pending or not layout.job_record(*key).exists():
-            out[key] = plan.replicates
-    return out
+    """Job key (scenario, first block of its first piece) -> replicates of every job
+    the next run will run: those with a shard to compute or without a record.
+    *plans*: ``shard_plans`` of the study, if already at hand."""
+    layout, job_of = study.layout(workdir), jobs.job_of_piece(study)
+    pending = {job_of[(plan.scenario, plan.first_block)]
+               for plan in (shard_plans(study, workdir) if plans is None else plans) if plan.pending}
+    return {job.key: sum(p.n_blocks for p in job.pieces) * study.block_size
+            for job in study.jobs if job.key in pending or not layout.job_record(*job.key).exists()}

@@ -2,7 +2,8 @@
 
 Everything a run writes goes under ``<workdir>/results/<study>/``::
 
-    shards/<scenario>/<estimator>/<first_block>.parquet   one estimator's estimates from one job
+    shards/<scenario>/<estimator>/<first_block>.parquet   one estimator's estimates from one piece
+    specs/<scenario>/<first_block>.json                   a job's spec, named after its first piece
     jobs/<scenario>/<first_block>.json                    a job's record, written after its shards
     logs/jobs/<scenario>/<first_block>.log                a job's log
     logs/ingest.log, logs/report.log, logs/snakemake-<time>.log
@@ -87,11 +88,15 @@ class ResultsLayout:
         return self.logs / f"snakemake-{stamp}.log"
 
     def shard(self, scenario: str, estimator: str, first_block: int | str) -> Path:
-        """Parquet shard of one scenario x estimator x range of seed blocks."""
+        """Parquet shard of one piece (scenario x range of seed blocks) x estimator."""
         return self.root / "shards" / scenario / estimator / f"{first_block}.parquet"
 
+    def job_spec(self, scenario: str, first_block: int | str) -> Path:
+        """Spec of one simulation job, named after its first piece (see :meth:`job_record`)."""
+        return self.root / "specs" / scenario / f"{first_block}.json"
+
     def job_record(self, scenario: str, first_block: int | str) -> Path:
-        """Record of one simulation job (a scenario x range of seed blocks).
+        """Record of one simulation job, named after its first piece (scenario x first block).
 
         Written after every shard of the job is in place: it is the job's
         output as Snakemake sees it.
@@ -118,8 +123,3 @@ class ResultsLayout:
         if layout.job_record(record.parent.name, record.stem) != record:
             raise ValueError(f"{record} is not a job record path (results/<study>/jobs/<scenario>/<block>.json)")
         return layout
-
-    def job_record_of_shard(self, shard: Path | str) -> Path:
-        """The record of the job that wrote *shard* (a path made by :meth:`shard`)."""
-        shard = Path(shard)
-        return self.job_record(shard.parent.parent.name, int(shard.stem))

@@ -7,6 +7,7 @@ the built-in estimators bundled with estbench, then on the normal import path.
 
 from __future__ import annotations
 
+import functools
 import importlib
 import importlib.util
 import inspect
@@ -87,6 +88,17 @@ def code_files(ref: str, dirs: Iterable[str]) -> list[Path]:
 def accepts(fn: Callable, name: str) -> bool:
     """Does *fn* declare a parameter called *name*? (``**kwargs`` does not count.)"""
     try:
-        return name in inspect.signature(fn).parameters
+        return name in _cached_parameters(fn)
+    except TypeError:  # an unhashable callable
+        return name in _parameters(fn)
+
+
+def _parameters(fn: Callable) -> frozenset:
+    try:
+        return frozenset(inspect.signature(fn).parameters)
     except (TypeError, ValueError):
-        return False
+        return frozenset()
+
+
+#: Parameter names looked up once per callable: a packed job asks for every piece.
+_cached_parameters = functools.lru_cache(maxsize=256)(_parameters)

@@ -11,6 +11,10 @@ from estbench.study.model import DEFAULT_MAX_FAILED_SHARE, EstimatorSpec, Study
 from estbench.study.schema import read_yaml, schema_errors
 
 
+def _auto_or_int(value) -> int | None:
+    return None if value == "auto" else int(value)
+
+
 def study_from_mapping(raw: Any, source: Path | None = None) -> Study:
     """Validate *raw* (schema, then semantics) and build a ``Study``.
 
@@ -31,7 +35,8 @@ def study_from_mapping(raw: Any, source: Path | None = None) -> Study:
     return Study(
         name=raw["study"], description=raw.get("description", ""), seed=int(raw["seed"]),
         replicates=int(raw["replicates"]), block_size=int(raw.get("block_size", 1000)),
-        blocks_per_job=None if raw.get("blocks_per_job", "auto") == "auto" else int(raw["blocks_per_job"]), level=float(raw.get("level", 0.95)),
+        blocks_per_job=_auto_or_int(raw.get("blocks_per_job", "auto")),
+        values_per_job=_auto_or_int(raw.get("values_per_job", "auto")), level=float(raw.get("level", 0.95)),
         sample_sizes=tuple(int(n) for n in raw["sample_sizes"]), dgms=dict(raw["dgms"]),
         estimators=estimators, reference=raw.get("reference"),
         targets=dict(raw.get("targets", {})),

@@ -9,6 +9,7 @@ from typing import Mapping
 
 from estbench.core.layout import ResultsLayout
 from estbench.simulate import plugins
+from estbench.study.packing import AUTO_VALUES_PER_JOB, Job, Piece, pack, pack_target
 from estbench.study.scenarios import Scenario, expand_study
 
 
@@ -22,10 +23,6 @@ class EstimatorSpec:
     args: Mapping = field(default_factory=dict)
     description: str = ""
 
-
-#: Values (block_size x n per block) one job draws when ``blocks_per_job`` is 'auto':
-#: several seconds of work for cheap estimators, so start-up stays a few per cent.
-AUTO_VALUES_PER_JOB = 50_000_000
 
 #: Default of ``max_failed_share``: above this share of failed replicates in a
 #: scenario an estimator is flagged. Common practice, chosen by estbench (no
@@ -42,7 +39,8 @@ class Study:
     seed: int
     replicates: int
     block_size: int
-    blocks_per_job: int | None   #: None = 'auto', sized per scenario by the data drawn
+    blocks_per_job: int | None   #: None = 'auto': pieces sized by the data drawn
+    values_per_job: int | None   #: None = 'auto': see ``jobs``
     level: float
     sample_sizes: tuple
     dgms: Mapping[str, Mapping]
@@ -82,12 +80,17 @@ class Study:
     def _scenario_n(self) -> dict:
         return {s.key: s.n for s in self.scenarios}
 
-    def job_blocks(self, scenario: str | None = None) -> int:
-        """Seed blocks per job of one scenario: ``blocks_per_job``, or if 'auto' enough
-        blocks to draw about ``AUTO_VALUES_PER_JOB`` values (block_size x n each).
+    @cached_property
+    def scenarios_by_key(self) -> dict[str, Scenario]:
+        return {s.key: s for s in self.scenarios}
 
-        It depends on block_size and n only, never on the estimators or the
-        replicate count, so adding either keeps every existing job's blocks.
+    def job_blocks(self, scenario: str | None = None) -> int:
+        """Seed blocks per piece (shard) of one scenario: ``blocks_per_job``, or if 'auto'
+        enough blocks to draw about ``AUTO_VALUES_PER_JOB`` values (block_size x n each).
+
+        It depends on block_size and n only, never on the estimators, the other
+        scenarios or the replicate count, so adding any of them keeps every
+        existing shard's blocks.
         """
         if self.blocks_per_job is not None:
             return self.blocks_per_job
@@ -95,8 +98,40 @@ class Study:
         return max(1, AUTO_VALUES_PER_JOB // (self.block_size * n))
 
     def job_first_blocks(self, scenario: str | None = None) -> list[int]:
-        """First seed block of every job (and shard) of a scenario."""
+        """First seed block of every piece (and shard) of a scenario."""
         return list(range(0, self.blocks_of(scenario), self.job_blocks(scenario)))
+
+    @cached_property
+    def pieces(self) -> tuple[Piece, ...]:
+        """Every piece (scenario x range of seed blocks), scenario by scenario."""
+        out = []
+        for s in self.scenarios:
+            blocks, step = self.blocks_of(s.key), self.job_blocks(s.key)
+            for first in range(0, blocks, step):
+                n_blocks = min(step, blocks - first)
+                out.append(Piece(s.key, first, n_blocks, s.n * self.block_size * n_blocks))
+        return tuple(out)
+
+    @cached_property
+    def jobs(self) -> tuple[Job, ...]:
+        """The simulation jobs: consecutive pieces packed into jobs of about
+        ``values_per_job`` values (see ``estbench.study.packing``). If that is
+        'auto': one job per piece with an integer ``blocks_per_job``, else
+        ``pack_target`` of the study's values."""
+        if self.values_per_job is not None:
+            return tuple(pack(self.pieces, self.values_per_job))
+        if self.blocks_per_job is not None:
+            return tuple(Job((p,)) for p in self.pieces)
+        return tuple(pack(self.pieces, pack_target(sum(p.values for p in self.pieces))))
+
+    @cached_property
+    def pieces_by_key(self) -> dict[tuple[str, int], Piece]:
+        return {p.key: p for p in self.pieces}
+
+    @cached_property
+    def jobs_by_key(self) -> dict[tuple[str, int], Job]:
+        """Job by the (scenario, first block) of its first piece."""
+        return {j.key: j for j in self.jobs}
 
     def blocks_of(self, scenario: str | None) -> int:
         """Seed blocks of one scenario: ``n_blocks``, or more where precision asked for them."""
