@@ -13,6 +13,17 @@ cache of the store's blocks and its join tables, which it frees on close.
 
 Run:  .venv/bin/python benchmarks/report_scale.py [--reps 100000] [--keep DIR]
 Target (issue 5): under 15 s on a 2-core machine.
+
+Wide mode: ``--wide K [K ...]`` builds, for each K, a study of one normal DGM
+with ``loc`` swept over K values x n in {10, 50} (2K scenarios) x 4 estimators
+(mean, median, 10% trimmed mean, SD) x 1000 replicates, through the same
+ingest path, then times ``estbench report`` as a user runs it (a fresh
+process, imports included) and prints, per K, the ingest and report seconds,
+seconds per scenario, the page's size and its figures: the report's cost must
+grow at most linearly, and cheaply, with the scenarios.
+
+Run:  .venv/bin/python benchmarks/report_scale.py --wide 50 100 200 [--keep DIR]
+Target: 400 scenarios (K = 200) under 30 s on a 2-core machine, the page a few MB.
 """
 
 from __future__ import annotations
@@ -35,9 +46,10 @@ from estbench.simulate.shard import SHARD_SCHEMA, versions, write_atomic
 from estbench.analyse.store import ingest
 from estbench.study.load import study_from_mapping
 
-#: Spread of each synthetic estimator relative to the mean's, and its bias in SDs.
+#: Spread of each synthetic estimator relative to the usual one for its estimand
+#: (the mean's for a location, the normal-theory SD's for the SD), and its bias in SDs.
 ESTIMATORS = {"mean": (1.00, 0.0), "median": (1.25, 0.0), "trimmed_10": (1.03, 0.0),
-              "winsorized_10": (1.04, 0.01), "huber": (1.02, 0.02)}
+              "winsorized_10": (1.04, 0.01), "huber": (1.02, 0.02), "sd": (1.00, -0.05)}
 FUNCTIONS = {"mean": "location:mean", "median": "location:median", "trimmed_10": "location:trimmed_mean",
              "winsorized_10": "location:winsorized_mean", "huber": "location:huber"}
 
@@ -61,11 +73,32 @@ def study_mapping(reps: int) -> dict:
     }
 
 
+def wide_mapping(locations: int) -> dict:
+    """The wide study: *locations* values of loc x 2 sample sizes, 1000 replicates."""
+    return {
+        "study": "report-wide",
+        "description": f"Synthetic wide store for timing the report: {locations} locations "
+                       "(invented numbers).",
+        "seed": 2026, "replicates": 1000, "block_size": 1000, "sample_sizes": [10, 50],
+        "dgms": {"normal": {"distribution": "norm", "params": {"loc": list(range(locations)), "scale": 1.0}}},
+        "estimators": {"mean": {"function": "location:mean", "target": "mean"},
+                       "median": {"function": "location:median", "target": "mean"},
+                       "trimmed_10": {"function": "location:trimmed_mean", "target": "mean",
+                                      "args": {"proportion": 0.1}},
+                       "sd": {"function": "scale:sd", "target": "sd"}},
+        "reference": "mean",
+    }
+
+
 def synthetic_shard(study, scenario, estimator: str, rng) -> pa.Table:
     """One scenario x estimator, every seed block: normal errors, SE, t interval, p-value."""
     reps, n = study.replicates_run, scenario.n
-    sd = scenario.spec["params"]["scale"] / np.sqrt(n) * ESTIMATORS[estimator][0]
-    truth = scenario.spec["params"]["loc"]
+    params = scenario.spec["params"]
+    if study.estimators[estimator].target == "sd":   # normal theory: sd(s) ≈ σ/√(2(n − 1))
+        truth, usual = params["scale"], params["scale"] / np.sqrt(2 * (n - 1))
+    else:
+        truth, usual = params["loc"], params["scale"] / np.sqrt(n)
+    sd = usual * ESTIMATORS[estimator][0]
     shared = rng.standard_normal(reps)             # the "same dataset" part, as for paired estimators
     estimate = truth + sd * (ESTIMATORS[estimator][1] + 0.9 * shared + 0.436 * rng.standard_normal(reps))
     se = sd * np.sqrt(rng.chisquare(n - 1, reps) / (n - 1))
@@ -84,9 +117,10 @@ def synthetic_shard(study, scenario, estimator: str, rng) -> pa.Table:
     }, schema=SHARD_SCHEMA)
 
 
-def write_shards(folder: Path, reps: int):
-    """Synthetic shards of the benchmark study in *folder*; returns (study, study file, shard paths)."""
-    raw = study_mapping(reps)
+def write_shards(folder: Path, reps: int, raw: dict | None = None):
+    """Synthetic shards of the benchmark study (or of *raw*) in *folder*; returns
+    (study, study file, shard paths)."""
+    raw = raw or study_mapping(reps)
     path = folder / "study.yaml"
     path.write_text(yaml.safe_dump(raw, sort_keys=False))
     study = study_from_mapping(raw, source=path)
@@ -159,11 +193,47 @@ def time_render(store: Path, folder: Path) -> dict:
     return json.loads(proc.stdout.strip().splitlines()[-1])
 
 
+def wide(locations: list[int], keep: Path | None) -> None:
+    """The wide mode: ingest and report seconds for each number of locations."""
+    import re
+
+    print(f"{'scenarios':>9} {'rows':>11} {'ingest s':>9} {'report s':>9} {'report ms/scenario':>19} "
+          f"{'report.html MiB':>16} {'figures':>8}")
+    with tempfile.TemporaryDirectory() as tmp:
+        for k in locations:
+            folder = (keep or Path(tmp)) / f"wide{k}"
+            folder.mkdir(parents=True, exist_ok=True)
+            study, path, shards = write_shards(folder, 0, wide_mapping(k))
+            layout = study.layout(folder)
+            for stale in (layout.store, layout.store.with_name(layout.store.name + ".wal")):
+                stale.unlink(missing_ok=True)       # a fresh ingest every time
+            start = time.perf_counter()
+            ingest(layout.store, study, shards)
+            ingested = time.perf_counter() - start
+            start = time.perf_counter()
+            subprocess.run([str(Path(sys.executable).with_name("estbench")), "report", path.name], cwd=folder,
+                           check=True, capture_output=True)
+            reported = time.perf_counter() - start
+            html = layout.report_html.read_text(encoding="utf-8")
+            scenarios = len(study.scenarios)
+            rows = scenarios * len(study.estimators) * study.replicates_run
+            print(f"{scenarios:>9} {rows:>11,} {ingested:>9.1f} {reported:>9.1f} "
+                  f"{1000 * reported / scenarios:>19.1f} {len(html.encode()) / 2**20:>16.2f} "
+                  f"{len(re.findall('<figure>', html)):>8}")
+    print(f"cores available {len(os.sched_getaffinity(0))}, 1-min load average {os.getloadavg()[0]:.1f}; "
+          "report seconds include starting Python and its imports")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--reps", type=int, default=100_000, help="replicates per scenario")
     parser.add_argument("--keep", type=Path, help="build in this folder and keep it (a store there is reused)")
+    parser.add_argument("--wide", type=int, nargs="+", metavar="K",
+                        help="time the report of wide studies instead: K locations x 2 sample sizes each")
     args = parser.parse_args()
+    if args.wide:
+        wide(args.wide, args.keep)
+        return
     with tempfile.TemporaryDirectory() as tmp:
         folder = args.keep or Path(tmp)
         folder.mkdir(parents=True, exist_ok=True)

@@ -170,17 +170,25 @@ FIGURE_SIZES = """JSON.stringify([...document.querySelectorAll('svg')].map(s => 
 }))"""
 
 
+def opens_cleanly_with_figures(chromium, page: Path, count: int) -> list[dict]:
+    """Open *page*: no console or load problem, and exactly *count* figures, each laid out
+    at a readable size. Returns the figures' sizes and labels."""
+    chromium.open(page)
+    assert chromium.problems() == []
+    figures = json.loads(chromium.evaluate(FIGURE_SIZES))
+    assert len(figures) == count
+    for f in figures:
+        assert f["w"] > 300 and f["h"] > 150, f
+    return figures
+
+
 def test_report_loads_cleanly_and_every_figure_is_laid_out(tmp_path, chromium):
     (tmp_path / "fragile.py").write_text(FRAGILE)
     raw = rich_study()
     raw["estimators"]["fragile"] = {"function": "fragile:fragile_mean", "target": "mean"}
     render_report(build_store(tmp_path, raw), tmp_path / "out")
-    chromium.open(tmp_path / "out" / "report.html")
-    assert chromium.problems() == []
-    figures = json.loads(chromium.evaluate(FIGURE_SIZES))
-    assert len(figures) == 7
+    figures = opens_cleanly_with_figures(chromium, tmp_path / "out" / "report.html", 7)
     for f in figures:
-        assert f["w"] > 300 and f["h"] > 150, f
         assert f["label"]
     assert chromium.evaluate("document.querySelectorAll('figure figcaption').length") == 7
     assert chromium.evaluate("document.scripts.length") == 0

@@ -75,12 +75,16 @@ def rich_study(**overrides) -> dict:
     return study
 
 
+def rendered(tmp_path_factory, name: str, study: dict) -> tuple[Path, Path, str]:
+    """(folder, store, page) of *study* run and rendered in a new folder called *name*."""
+    folder = tmp_path_factory.mktemp(name)
+    store = build_store(folder, study)
+    return folder, store, render_report(store, folder / "out")
+
+
 @pytest.fixture(scope="module")
 def rich_report(tmp_path_factory):
-    folder = tmp_path_factory.mktemp("rich")
-    store = build_store(folder, rich_study())
-    html = render_report(store, folder / "out")
-    return folder, store, html
+    return rendered(tmp_path_factory, "rich", rich_study())
 
 
 def test_every_section_is_there_in_order(rich_report):
@@ -134,10 +138,15 @@ def test_estimators_keep_one_colour_everywhere(rich_report):
     assert estimator_styles(["mean", "median", "trim", "extra"])["trim"] == styles["trim"]
 
 
+def performance_rows(folder: Path, *key: str) -> dict:
+    """The rendered performance.csv, one row per value of the *key* columns."""
+    with open(folder / "out" / "performance.csv") as fh:
+        return {tuple(r[k] for k in key): r for r in csv.DictReader(fh)}
+
+
 def test_table_cells_are_the_store_values_rounded_to_their_mcse(rich_report):
     folder, store, _ = rich_report
-    rows = {(r["dgm"], r["n"], r["estimator"], r["measure"]): r
-            for r in csv.DictReader(open(folder / "out" / "performance.csv"))}
+    rows = performance_rows(folder, "dgm", "n", "estimator", "measure")
     con = open_read_only(store)
     try:
         model = ReportModel.load(con)

@@ -185,27 +185,46 @@ def test_error_histograms_match_numpy_histogram(estimates_db):
         assert beyond == np.sum(np.abs(err) > tol)
 
 
+def _pairs(*rows: dict) -> dict:
+    """The pairs table of report_data.paired_differences, from one dict per pair."""
+    return {c: [r[c] for r in rows] for c in report_data.PAIR_COLUMNS}
+
+
 def test_paired_differences_match_numpy_on_the_same_datasets(estimates_db):
+    # Reference: the same per-replicate differences computed by numpy from the rows.
     con, d = estimates_db
     ok = d["ok_b"]
     a, b = d["a"][ok], d["b"][ok]
-    params = {"truth": 10.0, "level": 0.95, "sb_a": 1.0, "sb_b": -1.0, "sc_a": -1.0, "sc_b": 1.0,
-              "m_a": 10.01, "m_b": 10.03}
-    got = report_data.paired_differences(con, "s1", "a", "b", ["bias", "empirical_se", "rmse", "coverage"], params)
+    forward = {"pair": 0, "scenario": "s1", "est_a": "a", "est_b": "b", "truth": 10.0, "level": 0.95,
+               "sb_a": 1.0, "sb_b": -1.0, "sc_a": -1.0, "sc_b": 1.0, "m_a": 10.01, "m_b": 10.03}
+    # the same two estimators the other way round, with other signs and centres, in the same query
+    backward = {"pair": 1, "scenario": "s1", "est_a": "b", "est_b": "a", "truth": 10.0, "level": 0.9,
+                "sb_a": 1.0, "sb_b": 1.0, "sc_a": 1.0, "sc_b": 1.0, "m_a": 10.0, "m_b": 10.0}
+    measures = ["bias", "empirical_se", "rmse", "coverage"]
+    got = report_data.paired_differences(con, _pairs(forward, backward), measures)
+    assert [g["pair"] for g in got] == [0, 1]
     cover_a = np.abs(a - 10) <= 1.96 * 0.31
     cover_b = (b - d["half_b"] <= 10) & (10 <= b + 0.5 * d["half_b"])
-    expected = {
+    expected = [{
         "bias": -1.0 * (b - 10) - 1.0 * (a - 10),
         "empirical_se": (b - 10.03) ** 2 - (a - 10.01) ** 2,
         "rmse": (b - 10) ** 2 - (a - 10) ** 2,
         "coverage": 1.0 * (cover_b - 0.95) - (-1.0) * (cover_a - 0.95),
-    }
-    for measure, diff in expected.items():
-        assert got[f"{measure}_pairs"] == ok.sum()
-        assert got[f"{measure}_mean"] == pytest.approx(diff.mean(), rel=1e-9, abs=1e-12)
-        assert got[f"{measure}_sd"] == pytest.approx(diff.std(ddof=1), rel=1e-9)
-    only = report_data.paired_differences(con, "s1", "a", "b", ["rmse"], params)
-    assert set(only) == {"rmse_pairs", "rmse_mean", "rmse_sd"}
+    }, {
+        "bias": (a - 10) - (b - 10),
+        "empirical_se": (a - 10) ** 2 - (b - 10) ** 2,
+        "rmse": (a - 10) ** 2 - (b - 10) ** 2,
+        "coverage": (cover_a - 0.9) - (cover_b - 0.9),
+    }]
+    for row, want in zip(got, expected):
+        for measure, diff in want.items():
+            assert row[f"{measure}_pairs"] == ok.sum()
+            assert row[f"{measure}_mean"] == pytest.approx(diff.mean(), rel=1e-9, abs=1e-12)
+            assert row[f"{measure}_sd"] == pytest.approx(diff.std(ddof=1), rel=1e-9)
+    only = report_data.paired_differences(con, _pairs(forward), ["rmse"])
+    assert set(only[0]) == {"pair", "rmse_pairs", "rmse_mean", "rmse_sd"}
+    # a pair with no replicate in common (no such scenario) gives no row
+    assert report_data.paired_differences(con, _pairs({**forward, "scenario": "s9"}), ["rmse"]) == []
 
 
 def test_zip_sample_ranks_by_abs_z_and_keeps_every_kth(estimates_db):

@@ -75,8 +75,9 @@ def performance(con) -> list[dict]:
         ORDER BY s.position, e.position""")
     order = {m.name: i for i, m in enumerate(MEASURES)}
     rows.sort(key=lambda r: (r["spos"], r["epos"], order.get(r["measure"], len(order))))
+    swept = {text: json.loads(text) for text in {r["swept"] for r in rows}}    # one parse per scenario
     for r in rows:
-        r["swept"] = json.loads(r["swept"])
+        r["swept"] = swept[r["swept"]]
     return rows
 
 
@@ -194,42 +195,48 @@ def error_histograms(con, keys: dict) -> list[dict]:
 
 
 _COVERS = ("CASE WHEN {x}.lo IS NULL OR {x}.hi IS NULL THEN NULL "
-           "WHEN {x}.lo <= $truth AND $truth <= {x}.hi THEN 1.0 ELSE 0.0 END")
+           "WHEN {x}.lo <= k.truth AND k.truth <= {x}.hi THEN 1.0 ELSE 0.0 END")
 
 
 #: Per-replicate contribution of estimator {x} to each ranked measure (see
 #: ``report_stats.RANKINGS``); the paired difference is b's minus a's.
 _CONTRIBUTIONS = {
-    "bias": "$sb_{x} * ({x}.x - $truth)",
-    "empirical_se": "({x}.x - $m_{x}) ** 2",
-    "rmse": "({x}.x - $truth) ** 2",
-    "coverage": "$sc_{x} * (" + _COVERS + " - $level)",
+    "bias": "k.sb_{x} * ({x}.x - k.truth)",
+    "empirical_se": "({x}.x - k.m_{x}) ** 2",
+    "rmse": "({x}.x - k.truth) ** 2",
+    "coverage": "k.sc_{x} * (" + _COVERS + " - k.level)",
 }
 
+#: Columns of the pairs table of :func:`paired_differences`.
+PAIR_COLUMNS = ("pair", "scenario", "est_a", "est_b", "truth", "level", "sb_a", "sb_b", "sc_a", "sc_b",
+                "m_a", "m_b")
 
-def paired_differences(con, scenario: str, first: str, second: str, measures, params: dict) -> dict:
-    """Count, mean and sd of second's minus first's per-replicate contribution to
-    each of *measures*, over the replicates where both are 'ok' (the same
-    (scenario, rep): the same dataset).
 
-    *params* holds ``truth``, ``level`` and, for a (first) and b (second),
-    ``sb_a``/``sb_b`` (signs of the bias), ``sc_a``/``sc_b`` (signs of
-    coverage − level) and ``m_a``/``m_b`` (mean estimates). One small query
-    per pair: each side is one estimator's rows of one scenario, which the
-    store keeps together, so the join on rep stays in cache. The sums run in
-    rep order, so the result does not depend on how rows reached the store.
+def paired_differences(con, pairs: dict, measures) -> list[dict]:
+    """Count, mean and sd of b's minus a's per-replicate contribution to each of
+    *measures*, per pair of estimators, over the replicates where both are 'ok'
+    (the same (scenario, rep): the same dataset). One query for every pair.
+
+    *pairs* has the columns PAIR_COLUMNS: ``pair`` (a distinct integer id),
+    ``scenario``, the estimators ``est_a`` and ``est_b``, ``truth``, ``level``
+    and, for a and b, ``sb_*`` (signs of the bias), ``sc_*`` (signs of
+    coverage − level) and ``m_*`` (mean estimates). Returns one dict per pair
+    that has paired replicates (keys ``pair`` and ``<measure>_pairs``,
+    ``_mean``, ``_sd``), by pair id. The sums of each pair run in rep order,
+    so the result does not depend on how rows reached the store.
     """
-    side = """SELECT rep, estimate AS x, ci_low AS lo, ci_high AS hi FROM estimates
-              WHERE scenario = $scenario AND estimator = ${who} AND status = 'ok' AND isfinite(estimate)"""
+    side = """SELECT k.pair, x.rep, x.estimate AS x, x.ci_low AS lo, x.ci_high AS hi
+              FROM estimates x JOIN report_pairs k ON x.scenario = k.scenario AND x.estimator = k.{who}
+              WHERE x.status = 'ok' AND isfinite(x.estimate)"""
     diffs = {m: f"{_CONTRIBUTIONS[m].format(x='b')} - ({_CONTRIBUTIONS[m].format(x='a')})" for m in measures}
     # ORDER BY rep: sums in one fixed order, so the result is the same on every render
     aggregates = ", ".join(f"count({d}) AS {m}_pairs, avg({d} ORDER BY rep) AS {m}_mean, "
                            f"stddev_samp({d} ORDER BY rep) AS {m}_sd" for m, d in diffs.items())
-    used = {k: v for k, v in params.items() if f"${k}" in aggregates}
-    return fetch_dicts(con, f"""
-        WITH a AS ({side.format(who="first")}), b AS ({side.format(who="second")})
-        SELECT {aggregates} FROM a JOIN b USING (rep)""",
-                       {**used, "scenario": scenario, "first": first, "second": second})[0]
+    with registered(con, "report_pairs", {c: pairs[c] for c in PAIR_COLUMNS}):
+        return fetch_dicts(con, f"""
+            WITH a AS ({side.format(who="est_a")}), b AS ({side.format(who="est_b")})
+            SELECT k.pair, {aggregates} FROM a JOIN b USING (pair, rep) JOIN report_pairs k USING (pair)
+            GROUP BY k.pair ORDER BY k.pair""")
 
 
 def zip_sample(con, scenario: str, lines: int) -> list[dict]:

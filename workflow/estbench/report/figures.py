@@ -66,6 +66,8 @@ def estimator_styles(estimators: Sequence[str]) -> dict[str, Style]:
 
 
 _ID = re.compile(r'\bid="([^"]+)"')
+_PATH_DATA = re.compile(r' d="[^"]*"')
+_FINE_DIGITS = re.compile(r"(\d\.\d\d)\d+")
 
 
 def to_svg(fig: Figure, label: str, uid: str) -> str:
@@ -73,13 +75,16 @@ def to_svg(fig: Figure, label: str, uid: str) -> str:
 
     Element ids get the prefix *uid*, so figures on one page never share an
     id; namespace declarations are dropped (inline SVG in HTML needs none),
-    which keeps the page free of any http: reference.
+    which keeps the page free of any http: reference. Path coordinates keep
+    two decimals of a point (1/7200 inch): more is invisible and only makes
+    the page larger.
     """
     buf = io.StringIO()
     fig.savefig(buf, format="svg", metadata={"Creator": None, "Date": None, "Format": None, "Type": None})
     svg = buf.getvalue()
     svg = svg[svg.index("<svg"):]
     svg = re.sub(r'\s+xmlns(:\w+)?="[^"]*"', "", svg)
+    svg = _PATH_DATA.sub(lambda m: _FINE_DIGITS.sub(r"\1", m.group(0)), svg)
     ids = set(_ID.findall(svg))
     svg = _ID.sub(lambda m: f'id="{uid}-{m.group(1)}"', svg)
     svg = re.sub(r"(url\(#|href=\"#)([^)\"]+)",
@@ -170,10 +175,12 @@ def _n_ticks(ax, n_values: Sequence[int]) -> None:
     ax.xaxis.set_minor_locator(NullLocator())
 
 
-def _legend(fig: Figure, styles: Mapping[str, Style], names: Sequence[str], extra=()) -> None:
-    """Estimators (and *extra* handles) in the space _panels keeps on the right."""
-    handles = [Line2D([], [], color=st.colour, marker=st.marker, ls=st.line, ms=4, label=name)
-               for name, st in styles.items() if name in names]   # in study order
+def _legend(fig: Figure, styles: Mapping[str, Style], names: Sequence[str], extra=(),
+            markers: bool = True) -> None:
+    """Estimators (and *extra* handles) in the space _panels keeps on the right; their
+    markers only if the lines have them."""
+    handles = [Line2D([], [], color=st.colour, marker=st.marker if markers else "None", ls=st.line, ms=4,
+                      label=name) for name, st in styles.items() if name in names]   # in study order
     width = fig.get_size_inches()[0]
     fig.legend(handles=[*handles, *extra], loc="center left", frameon=False,
                bbox_to_anchor=(1 - (_LEGEND - 0.12) / width, 0.5))
@@ -398,4 +405,48 @@ def efficiency_svg(relative: Mapping[str, dict], crb: Mapping[str, dict], asympt
             ax.set_title("efficiency vs Cramér–Rao bound")
         _n_ticks(ax, all_n)
     _legend(fig, styles, names)
+    return to_svg(fig, label, uid)
+
+
+#: Points per line above which a figure across settings draws the line without markers.
+MARKED_POINTS = 30
+BAND_ALPHA = 0.18
+
+
+def across_settings_svg(panels: Sequence[dict], styles: Mapping[str, Style], columns: int, title: str,
+                        xlabel: str, log_x: bool, band_label: str, label: str, uid: str) -> str:
+    """Measures across the settings of one DGM: one line per estimator with a
+    shaded ±2 MCSE band, panels in rows of *columns* (a measure per column, a
+    sample size per row).
+
+    ``panels``: ``[{"title": str, "series": {est: {"x", "value", "mcse"}},
+    "hline": float | None, "band": (low, high) | None}]``; ``hline`` is a dashed
+    reference line (0 for bias, 1 for an efficiency, the nominal level), ``band``
+    a grey range behind the lines. *band_label* names the coloured bands in the legend.
+    """
+    fig, axes = _panels(len(panels), columns, panel_width=2.55 if columns >= 3 else 3.4, panel_height=2.0,
+                        title=title, legend=True)
+    names, marked = [], False
+    for i, (ax, p) in enumerate(zip(axes, panels)):
+        if p.get("band"):
+            ax.axhspan(*p["band"], color="#e8ebee", lw=0)
+        if p.get("hline") is not None:
+            ax.axhline(p["hline"], color=GUIDE, lw=1, ls=(0, (4, 3)))
+        for est, d in p["series"].items():
+            st = styles[est]
+            x = np.asarray(d["x"], float)
+            order = np.argsort(x, kind="stable")
+            x, v, e = x[order], np.asarray(d["value"], float)[order], np.asarray(d["mcse"], float)[order]
+            ax.fill_between(x, v - 2 * e, v + 2 * e, color=st.colour, alpha=BAND_ALPHA, lw=0)
+            ax.plot(x, v, color=st.colour, ls=st.line, lw=1.2, ms=3.5,
+                    marker=st.marker if x.size <= MARKED_POINTS else "None")
+            marked = marked or x.size <= MARKED_POINTS
+            names += [est] if est not in names else []
+        if log_x:
+            ax.set_xscale("log")
+        ax.set_title(p["title"])
+        if i >= len(panels) - columns:
+            ax.set_xlabel(xlabel)
+        ax.grid(True, which="major", lw=0.4, color="#e2e5e8")
+    _legend(fig, styles, names, (Patch(color="#666666", alpha=BAND_ALPHA * 2, label=band_label),), marked)
     return to_svg(fig, label, uid)

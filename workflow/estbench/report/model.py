@@ -1,6 +1,11 @@
 """What the report is about, read once from the store: the study, its DGM
 families (one curve in n each), the estimators and the performance table,
-indexed for the section builders."""
+indexed for the section builders.
+
+A study with many DGM settings (families) gets the compact layout: the
+per-setting figures are drawn for a few settings only (``shown_families``),
+figures across the settings of each DGM (``Sweep``) summarise them all, and
+the performance table has a row per scenario x estimator."""
 
 from __future__ import annotations
 
@@ -8,6 +13,7 @@ import json
 import re
 from collections import defaultdict
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Mapping
 
 import numpy as np
@@ -16,6 +22,16 @@ import yaml
 from estbench.analyse.failures import failure_warnings, max_failed_share_of
 from estbench.report import data as report_data
 from estbench.report.figures import Style, estimator_styles
+
+#: Up to this many DGM settings the report shows every setting in full (a table
+#: and figures each); above it the compact layout is used.
+DETAIL_SETTINGS = 12
+#: In the compact layout: settings drawn in full per DGM (first, middle, last in
+#: study order), and at most this many in all.
+SHOWN_PER_DGM = 3
+SHOWN_SETTINGS = 6
+#: Sample sizes (rows of panels) in a figure across settings.
+ACROSS_SIZES = 4
 
 
 @dataclass(frozen=True)
@@ -29,7 +45,7 @@ class Family:
 
     @property
     def title(self) -> str:
-        return self.dgm + (" (" + ", ".join(f"{k} = {_short(v)}" for k, v in self.swept.items()) + ")"
+        return self.dgm + (" (" + ", ".join(f"{k} = {value_text(v)}" for k, v in self.swept.items()) + ")"
                            if self.swept else "")
 
     @property
@@ -41,7 +57,8 @@ class Family:
         return f"{self.title}, n = {scenario['n']}"
 
 
-def _short(value) -> str:
+def value_text(value) -> str:
+    """A swept value as a reader writes it: '0.5', '1e+03', 'low'."""
     return format(value, "g") if isinstance(value, (int, float)) else str(value)
 
 
@@ -63,13 +80,74 @@ def report_options(study_yaml: str) -> dict:
     return dict(raw.get("report") or {})
 
 
+def spread(items, limit: int) -> list:
+    """At most *limit* of *items*, in their order: the first, the last and evenly spread ones between."""
+    items = list(items)
+    if len(items) <= limit:
+        return items
+    pick = np.unique(np.round(np.linspace(0, len(items) - 1, limit)).astype(int))
+    return [items[i] for i in pick]
+
+
 def spread_sample_sizes(sizes, limit: int) -> list[int]:
     """At most *limit* sample sizes: the smallest, the largest and evenly spread ones between."""
-    sizes = sorted(sizes)
-    if len(sizes) <= limit:
-        return sizes
-    pick = np.unique(np.round(np.linspace(0, len(sizes) - 1, limit)).astype(int))
-    return [sizes[i] for i in pick]
+    return spread(sorted(sizes), limit)
+
+
+def shown_families(families: list[Family]) -> list[Family]:
+    """The settings drawn in full: all of them up to DETAIL_SETTINGS; otherwise up to
+    SHOWN_PER_DGM per DGM spread over its settings, SHOWN_SETTINGS in all."""
+    if len(families) <= DETAIL_SETTINGS:
+        return list(families)
+    by_dgm: dict[str, list[Family]] = {}
+    for f in families:
+        by_dgm.setdefault(f.dgm, []).append(f)
+    per_dgm = max(1, min(SHOWN_PER_DGM, SHOWN_SETTINGS // len(by_dgm)))
+    picked = {f.slug for rows in by_dgm.values() for f in spread(rows, per_dgm)}
+    return spread([f for f in families if f.slug in picked], SHOWN_SETTINGS)
+
+
+def _is_number(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and np.isfinite(v)
+
+
+@dataclass(frozen=True)
+class Sweep:
+    """The settings of one DGM as points on one axis: the value of its one varying
+    swept parameter, or else the setting's number in study order."""
+
+    dgm: str
+    families: tuple       #: in study order
+    x: tuple              #: one number per family
+    label: str            #: the axis label
+    log: bool             #: a log axis (positive values spanning a factor 20 or more)
+    parameter: str | None  #: the parameter on the axis; None when x counts the settings
+
+    @property
+    def sample_sizes(self) -> list[int]:
+        return sorted({n for f in self.families for n in f.sample_sizes})
+
+
+def sweeps_of(families: list[Family]) -> list[Sweep]:
+    """One Sweep per DGM with two or more settings, in study order."""
+    by_dgm: dict[str, list[Family]] = {}
+    for f in families:
+        by_dgm.setdefault(f.dgm, []).append(f)
+    out = []
+    for dgm, rows in by_dgm.items():
+        if len(rows) < 2:
+            continue
+        names = list(dict.fromkeys(k for f in rows for k in f.swept))
+        varying = [k for k in names if len({json.dumps(f.swept.get(k)) for f in rows}) > 1]
+        if len(varying) == 1 and all(_is_number(f.swept.get(varying[0])) for f in rows):
+            x = tuple(float(f.swept[varying[0]]) for f in rows)
+            log = min(x) > 0 and max(x) >= 20 * min(x)
+            out.append(Sweep(dgm, tuple(rows), x, varying[0], log, varying[0]))
+        else:
+            what = ", ".join(varying) or "settings"
+            out.append(Sweep(dgm, tuple(rows), tuple(float(i) for i in range(1, len(rows) + 1)),
+                             f"setting of {what} (number in study order)", False, None))
+    return out
 
 
 @dataclass
@@ -87,6 +165,7 @@ class ReportModel:
     styles: dict[str, Style]
     _perf: dict = field(default_factory=dict, repr=False)
     _truth: dict = field(default_factory=dict, repr=False)
+    _present: dict = field(default_factory=dict, repr=False)   #: measure -> scenarios that have it
 
     @classmethod
     def load(cls, con) -> "ReportModel":
@@ -100,7 +179,28 @@ class ReportModel:
                     styles=estimator_styles([e["estimator"] for e in estimators]))
         model._perf = {(r["scenario"], r["estimator"], r["measure"]): r for r in model.performance}
         model._truth = {(t["scenario"], t["estimand"]): t for t in model.truths}
+        for r in model.performance:
+            model._present.setdefault(r["measure"], set()).add(r["scenario"])
         return model
+
+    @property
+    def compact(self) -> bool:
+        """True for a study with more than DETAIL_SETTINGS DGM settings."""
+        return len(self.families) > DETAIL_SETTINGS
+
+    @cached_property
+    def shown(self) -> list[Family]:
+        """The settings whose figures are drawn (all of them unless compact)."""
+        return shown_families(self.families)
+
+    @cached_property
+    def sweeps(self) -> list[Sweep]:
+        """The DGMs summarised across their settings (compact layout only)."""
+        return sweeps_of(self.families) if self.compact else []
+
+    def swept_names(self) -> list[str]:
+        """Swept parameter names over all scenarios, in order of first appearance."""
+        return list(dict.fromkeys(k for f in self.families for k in f.swept))
 
     @property
     def level(self) -> float:
@@ -128,9 +228,10 @@ class ReportModel:
         return None if r is None else r["value"]
 
     def has(self, measure: str, family: Family | None = None) -> bool:
-        keys = None if family is None else {s["scenario"] for s in family.scenarios}
-        return any(r["measure"] == measure and (keys is None or r["scenario"] in keys)
-                   for r in self.performance)
+        present = self._present.get(measure, ())
+        if family is None:
+            return bool(present)
+        return any(s["scenario"] in present for s in family.scenarios)
 
     def series(self, family: Family, measure: str, estimators=None) -> dict[str, dict]:
         """``{estimator: {"n", "value", "mcse"}}`` of *measure* along the family's n,
@@ -142,6 +243,23 @@ class ReportModel:
                 r = self.row(s["scenario"], est, measure)
                 if r is not None and r["value"] is not None and np.isfinite(r["value"]):
                     d["n"].append(s["n"])
+                    d["value"].append(r["value"])
+                    d["mcse"].append(r["mcse"] if r["mcse"] is not None else np.nan)
+            if d:
+                out[est] = dict(d)
+        return out
+
+    def series_across(self, sweep: Sweep, measure: str, n: int, estimators) -> dict[str, dict]:
+        """``{estimator: {"x", "value", "mcse"}}`` of *measure* at sample size *n* across
+        the settings of *sweep*, for estimators with at least one finite value."""
+        out = {}
+        for est in estimators:
+            d = defaultdict(list)
+            for x, f in zip(sweep.x, sweep.families):
+                s = next((s for s in f.scenarios if s["n"] == n), None)
+                r = s and self.row(s["scenario"], est, measure)
+                if r and r["value"] is not None and np.isfinite(r["value"]):
+                    d["x"].append(x)
                     d["value"].append(r["value"])
                     d["mcse"].append(r["mcse"] if r["mcse"] is not None else np.nan)
             if d:

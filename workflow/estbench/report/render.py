@@ -18,7 +18,7 @@ from estbench.core.files import atomic_path, write_text_atomically
 from estbench.core.layout import ResultsLayout
 from estbench.report import data as report_data
 from estbench.report.figure_queue import FigureQueue
-from estbench.report.model import ReportModel
+from estbench.report.model import DETAIL_SETTINGS, ReportModel
 from estbench.report.sections import SECTIONS
 from estbench.report.sections.base import SectionInputs
 from estbench.report.stats import RANKINGS
@@ -83,16 +83,19 @@ def write_checks_csv(con, out: Path) -> None:
                              for h in header])
 
 
-def build_context(con, queue: FigureQueue) -> dict:
-    """Everything the template shows, read from the store, section by section; the
-    figures are queued on *queue* and drawn by ``queue.draw()``."""
-    model = ReportModel.load(con)
+def build_context(model: ReportModel, con, queue: FigureQueue) -> dict:
+    """Everything the template shows, read from the store (*model* and the
+    queries of each section), section by section; the figures are queued on
+    *queue* and drawn by ``queue.draw()``."""
     inputs = SectionInputs(model, con, queue, report_data.checks(con))
     context = {
         "study": model.study, "reference": model.reference, "level": model.level,
         "families": model.families, "styles": model.styles,
         "estimator_names": model.estimator_names(), "rankings": RANKINGS,
         "estbench_version": __version__,
+        "layout": {"compact": model.compact, "settings": len(model.families),
+                   "scenarios": len(model.scenarios), "limit": DETAIL_SETTINGS,
+                   "shown": [f.title for f in model.shown]},
         "sections": [{"name": section.__name__.rsplit(".", 1)[1], "title": section.TITLE}
                      for section in SECTIONS],
     }
@@ -118,16 +121,16 @@ def render(layout: ResultsLayout) -> None:
     try:
         with reading_store(layout.store):   # a damaged store: one clear line
             con.execute("SET enable_progress_bar = false")
-            context = build_context(con, queue)
+            model = ReportModel.load(con)
+            context = build_context(model, con, queue)
             context["links"] = {name: Path(os.path.relpath(path, layout.report_html.parent)).as_posix()
                                 for name, path in (("performance", layout.performance_csv),
                                                    ("checks", layout.checks_csv))}
-            rows = report_data.performance(con)
             write_checks_csv(con, layout.checks_csv)
     finally:
         con.close()
     queue.draw()    # after closing the store: workers fork a process without DuckDB threads
-    write_performance_csv(rows, layout.performance_csv)
+    write_performance_csv(model.performance, layout.performance_csv)
     write_text_atomically(layout.report_html, render_html(context))
 
 

@@ -1,7 +1,9 @@
 """Section 4, convergence in n: error against n on log-log axes, fitted rates, sampling
 distributions of the error, root-n scaled errors and exceedance shares.
 
-Histograms and quantiles are aggregated in SQL over the estimates (``report.data``)."""
+Histograms and quantiles are aggregated in SQL over the estimates (``report.data``), for
+the settings drawn in full only. In the compact layout (many DGM settings) the fitted
+exponents of every setting are drawn across the settings of each DGM."""
 
 from __future__ import annotations
 
@@ -9,12 +11,13 @@ import math
 
 import numpy as np
 
+from estbench.report import across
 from estbench.report import data as report_data
 from estbench.report import figures
 from estbench.report.figure_queue import FigureQueue
-from estbench.report.model import Family, ReportModel, spread_sample_sizes
+from estbench.report.model import Family, ReportModel, Sweep, spread_sample_sizes
 from estbench.report.sections.base import SectionInputs
-from estbench.report.stats import (power_law_fit)
+from estbench.report.stats import PowerLawFit, power_law_fit
 
 #: The entry of the page's table of contents.
 TITLE = "Convergence in n"
@@ -30,22 +33,68 @@ QUANTILE_SAMPLE = 20_000
 HISTOGRAM_PANELS = 6
 
 
+#: The measures whose rate in n is fitted.
+RATE_MEASURES = (("empirical_se", "empirical SE"), ("rmse", "RMSE"))
+
+
+def _fits(model: ReportModel, family: Family, est: str) -> dict[str, PowerLawFit | None]:
+    """The power-law fit of each of RATE_MEASURES along the family's n."""
+    fits = {}
+    for measure, _ in RATE_MEASURES:
+        d = model.series(family, measure, [est]).get(est)
+        fits[measure] = d and power_law_fit(d["n"], d["value"], d["mcse"])
+    return fits
+
+
 def _rate_rows(model: ReportModel, family: Family) -> list[dict]:
     rows = []
     for est in model.estimator_names():
-        fits = {}
-        for measure in ("empirical_se", "rmse"):
-            d = model.series(family, measure, [est]).get(est)
-            fits[measure] = d and power_law_fit(d["n"], d["value"], d["mcse"])
+        fits = _fits(model, family, est)
         if any(fits.values()):
             rows.append({"estimator": est, **fits})
     return rows
 
 
+def _exponents_figure(model: ReportModel, queue: FigureQueue, sweep: Sweep, target: str) -> dict | None:
+    """The fitted exponents b of every setting of *sweep*, across the settings."""
+    names = model.estimator_names(target)
+    fits = {(f.slug, est): _fits(model, f, est) for f in sweep.families for est in names}
+    panels = []
+    for measure, name in RATE_MEASURES:
+        series = {}
+        for est in names:
+            d = {"x": [], "value": [], "mcse": []}
+            for x, f in zip(sweep.x, sweep.families):
+                fit = fits[(f.slug, est)][measure]
+                if fit:
+                    d["x"].append(x)
+                    d["value"].append(fit.exponent)
+                    d["mcse"].append(fit.se)
+            if d["x"]:
+                series[est] = d
+        if series:
+            panels.append({"title": f"{name}: exponent b", "series": series, "hline": -0.5})
+    if not panels:
+        return None
+    title = across.title_of(model, sweep, target)
+    return queue.add(
+        figures.across_settings_svg,
+        f"The exponent b of empirical SE ∝ n^b and RMSE ∝ n^b fitted at each of the "
+        f"{len(sweep.families)} settings of {sweep.dgm} (x axis: {sweep.label}) over n = "
+        f"{', '.join(map(str, sweep.sample_sizes))}, with a shaded band of ±2 standard errors of b. The "
+        "dashed line is the usual root-n rate, b = −0.5; an RMSE exponent above the SE's is a bias that shrinks "
+        "more slowly than the SE.",
+        f"Rates in n, {title}",
+        f"Fitted exponents of n for empirical SE and RMSE against {sweep.label} for {sweep.dgm}.",
+        panels=panels, styles=model.styles, columns=len(panels), title=title, xlabel=sweep.label,
+        log_x=sweep.log, band_label="±2 SE of b")
+
+
 def _keys(model: ReportModel) -> list[dict]:
-    """Every scenario x estimator with a true value: the rows the estimate queries join to."""
+    """Every scenario x estimator with a true value, in the settings drawn in full: the
+    rows the estimate queries join to."""
     out = []
-    for scen in model.scenarios:
+    for scen in (s for f in model.shown for s in f.scenarios):
         for est in model.estimator_names():
             truth = model.truth(scen["scenario"], model.target_of(est))
             if truth is not None and math.isfinite(truth["value"]):
@@ -124,12 +173,14 @@ def _tolerance(model: ReportModel, family: Family, target: str) -> tuple[float |
     return value, f"default: the empirical SE of {pick} at n = {smallest['n']}"
 
 
-def convergence(model: ReportModel, con, queue: FigureQueue) -> list[dict]:
-    tolerances = {(f.slug, t): _tolerance(model, f, t) for f in model.families for t in model.targets()}
+def convergence(model: ReportModel, con, queue: FigureQueue) -> dict:
+    tolerances = {(f.slug, t): _tolerance(model, f, t) for f in model.shown for t in model.targets()}
     hist = _histograms(model, con, {(s["scenario"], t): tolerances[(f.slug, t)][0]
-                                    for f in model.families for s in f.scenarios for t in model.targets()})
+                                    for f in model.shown for s in f.scenarios for t in model.targets()})
+    summary = [figure for sweep in model.sweeps if len(sweep.sample_sizes) > 1 for t in model.targets()
+               if (figure := _exponents_figure(model, queue, sweep, t)) is not None]
     sections = []
-    for f in model.families:
+    for f in model.shown:
         sec = {"title": f.title, "slug": f.slug, "curves": None, "rates": [], "figures": [],
                "several_n": len(f.scenarios) > 1}
         if sec["several_n"]:
@@ -162,7 +213,7 @@ def convergence(model: ReportModel, con, queue: FigureQueue) -> list[dict]:
                     panels=[{"target": target, "tolerance": tol, "series": ex}], styles=model.styles,
                     title=f.title))
         sections.append(sec)
-    return sections
+    return {"across": summary, "settings": sections}
 
 
 def _exceedance_series(model: ReportModel, family: Family, target: str, hist: dict) -> dict:
@@ -243,5 +294,5 @@ def _distribution_figures(model, family, target, hist, queue: FigureQueue) -> li
 # ------------------------------------------------------------------ intervals
 
 
-def build(inputs: SectionInputs) -> list[dict]:
+def build(inputs: SectionInputs) -> dict:
     return convergence(inputs.model, inputs.con, inputs.queue)

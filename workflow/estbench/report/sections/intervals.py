@@ -1,7 +1,9 @@
-"""Section 5, intervals: coverage and width against n, and the zip plot of one scenario."""
+"""Section 5, intervals: coverage and width against n, and the zip plot of one scenario;
+in the compact layout (many DGM settings) also across the settings of each DGM."""
 
 from __future__ import annotations
 
+from estbench.report import across
 from estbench.report import data as report_data
 from estbench.report import figures
 from estbench.report.figure_queue import FigureQueue
@@ -30,8 +32,15 @@ def intervals(model: ReportModel, con, queue: FigureQueue) -> dict:
     level = model.level
     n_sim = int(model.study["replicates_run"])
     band = nominal_band(level, n_sim)
+    summary = across.figures_per_sweep(
+        model, queue, ({"measure": "coverage", "title": "coverage", "hline": level, "band": band},
+                       {"measure": "ci_width", "title": "mean interval width"}),
+        f"Coverage of the {level:.0%} intervals and their mean width against the swept parameter. The "
+        f"dashed line is the nominal level and the grey band level ± 2·√(level(1−level)/{n_sim}) = "
+        f"{band[0]:.3f}–{band[1]:.3f}, where coverage falls in about 95% of studies of this size if it is "
+        "exactly nominal.")
     sections = []
-    for f in model.families:
+    for f in model.shown:
         cov = model.series(f, "coverage")
         if not cov:
             continue
@@ -47,7 +56,7 @@ def intervals(model: ReportModel, con, queue: FigureQueue) -> dict:
             f"Coverage and mean interval width against n for {f.title}.",
             coverage=cov, width=width, styles=model.styles, level=level, band=band, title=f.title)})
     zip_fig = None
-    if sections:
+    if sections or summary:
         scen = _zip_scenario(model)
         rows = report_data.zip_sample(con, scen["scenario"], ZIP_LINES)
         panels, ranked_by = [], {}
@@ -81,7 +90,7 @@ def intervals(model: ReportModel, con, queue: FigureQueue) -> dict:
                 f"Zip plot, {title}",
                 f"Zip plot of interval coverage for {title}, one panel per estimator.",
                 panels=panels, styles=model.styles, level=level, title=title)
-    return {"families": sections, "zip": zip_fig, "band": band, "n_sim": n_sim}
+    return {"families": sections, "across": summary, "zip": zip_fig, "band": band, "n_sim": n_sim}
 
 
 # ------------------------------------------------------------------ efficiency

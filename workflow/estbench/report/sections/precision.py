@@ -17,6 +17,9 @@ KEY = "precision"
 
 #: Most common failure messages shown per scenario x estimator.
 TOP_MESSAGES = 3
+#: Rows listed of each list of problems (targets not met, flagged blocks, failure
+#: warnings); the rest are counted, and every check is in checks.csv.
+LISTED = 50
 
 
 def _where(row, families_by_scenario) -> str:
@@ -45,9 +48,10 @@ def precision(model: ReportModel, con, checks: list[dict]) -> dict:
     alpha = tested[0]["limit"] if tested else None
     flagged = [{**c, "where": _where(c, fam_of)} for c in tested if not c["passed"]]
     failures = _failures(model, con)
-    return {"targets": summary, "not_met": not_met, "blocks_tested": len(tested), "alpha": alpha,
-            "expected_by_chance": None if alpha is None else alpha * len(tested), "flagged": flagged,
-            **failures}
+    return {"targets": summary, "not_met": not_met[:LISTED], "not_met_total": len(not_met),
+            "blocks_tested": len(tested), "alpha": alpha,
+            "expected_by_chance": None if alpha is None else alpha * len(tested), "flagged": flagged[:LISTED],
+            "flagged_total": len(flagged), **failures}
 
 
 def _messages_text(messages, kinds: int) -> str:
@@ -77,11 +81,12 @@ def _failures(model: ReportModel, con) -> dict:
     by_estimator = [{**m, "more": m["kinds"] - len(m["messages"])}
                     for m in report_data.failure_messages(con, TOP_MESSAGES, "estimator")]
     by_estimator.sort(key=lambda m: names.index(m["estimator"]))
+    warnings = model.failure_warnings()
     total = sum(c["rows"] for c in model.counts)
     failed = sum(c["failed"] for c in model.counts)
     return {"failure_rows": rows, "failure_estimators": [n for n in names if any(n in r["cells"] for r in rows)],
             "failure_messages": by_estimator, "failed": failed, "replicates": total,
-            "failure_warnings": model.failure_warnings(),
+            "failure_warnings": warnings[:LISTED], "failure_warnings_total": len(warnings),
             "max_failed_share": model.max_failed_share}
 
 
