@@ -155,6 +155,19 @@ def _sql_str(path) -> str:
     return str(path).replace("'", "''")
 
 
+def _insert_rows(con, table: str, rows: list) -> None:
+    """Insert *rows* (lists in the table's column order) in one statement, through Arrow:
+    ``executemany`` runs a statement per row (1.3 s for 1,600 shards)."""
+    if not rows:
+        return
+    columns = {f"c{i}": pa.array(list(values)) for i, values in enumerate(zip(*rows))}
+    con.register("rows_in", pa.table(columns))
+    try:
+        con.execute(f"INSERT INTO {table} SELECT * FROM rows_in")
+    finally:
+        con.unregister("rows_in")
+
+
 def _write_study_tables(con, study: Study) -> None:
     import yaml
     now = time.strftime("%Y-%m-%dT%H:%M:%S%z")
@@ -172,14 +185,14 @@ def _write_study_tables(con, study: Study) -> None:
         dgm = build_dgm(s.spec, study.search_dirs, study.seed)
         truth_rows += [[s.key, e, dgm.truth(e), dgm.truth_mcse(e), dgm.crb(e, s.n)]
                        for e in dgm.estimands()]
-    con.executemany("INSERT INTO scenarios VALUES (?,?,?,?,?,?,?,?)", scen_rows)
-    con.executemany("INSERT INTO truths VALUES (?,?,?,?,?)", truth_rows)
+    _insert_rows(con, "scenarios", scen_rows)
+    _insert_rows(con, "truths", truth_rows)
     est_rows = []
     for pos, e in enumerate(study.estimators.values()):
         code = estimator_code_hash(e.function, study.search_dirs)
         est_rows.append([e.name, e.function, e.target, canonical_json(e.args), e.description,
                          code, e.name == study.reference, pos])
-    con.executemany("INSERT INTO estimators VALUES (?,?,?,?,?,?,?,?)", est_rows)
+    _insert_rows(con, "estimators", est_rows)
 
 
 def measure_options(study: Study) -> dict:
@@ -238,10 +251,10 @@ def ingest(store: Path | str, study: Study, shards: Iterable[Path | str], thread
             files = ", ".join(f"'{_sql_str(wanted[p])}'" for p in metas)
             con.execute(f"INSERT INTO estimates SELECT {', '.join(SHARD_SCHEMA.names)} "
                         f"FROM read_parquet([{files}])")
-            con.executemany("INSERT INTO shards VALUES (?,?,?,?,?,?,?,?,?)", [
+            _insert_rows(con, "shards", [
                 [p, m["scenario"], m["estimator"], m["first_block"], m["n_blocks"], m["rows"],
                  wanted[p].stat().st_size, digests[p], now] for p, m in metas.items()])
-            con.executemany("INSERT INTO provenance VALUES (?,?,?,?,?,?,?,?,?,?,?,?)", [
+            _insert_rows(con, "provenance", [
                 [p, m["seed"], m["scenario_spawn_key"], m["function"], m["code_hash"],
                  *(m["versions"][k] for k in ("estbench", "numpy", "scipy", "pyarrow", "python")),
                  m["seconds"], m["created"]] for p, m in metas.items()])
