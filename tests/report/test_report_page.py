@@ -14,7 +14,8 @@ import pytest
 
 from estbench.study import jobs
 from estbench.report.figure_queue import FigureQueue
-from estbench.report.figures import estimator_styles, exceedance_svg
+from estbench.report.figures import exceedance_svg
+from estbench.report.styles import estimator_styles
 from estbench.core.layout import ResultsLayout
 from estbench.report.render import render
 from estbench.report.model import ReportModel

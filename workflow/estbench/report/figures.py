@@ -3,7 +3,7 @@
 Every function takes small, already aggregated numbers (one point per
 scenario x estimator, or histogram counts) and returns one ``<svg>`` element
 that carries ``role="img"`` and an ``aria-label``. Each estimator keeps its
-colour, marker and line style in every figure (``estimator_styles``).
+colour, marker and line style in every figure (``styles.estimator_styles``).
 """
 
 from __future__ import annotations
@@ -12,7 +12,6 @@ import html
 import io
 import math
 import re
-from dataclasses import dataclass
 from typing import Mapping, Sequence
 
 import matplotlib
@@ -26,11 +25,8 @@ from matplotlib.lines import Line2D  # noqa: E402
 from matplotlib.patches import Patch  # noqa: E402
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter, NullLocator  # noqa: E402
 
-# A colour-blind-safe qualitative palette (Okabe & Ito, 2008, "Color Universal
-# Design"), without its yellow, which is hard to see on white.
-PALETTE = ("#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9", "#000000")
-MARKERS = ("o", "s", "^", "D", "v", "P", "X")
-DASHES = ("-", "--", ":", "-.")
+from estbench.report.styles import Style  # noqa: E402
+
 GUIDE = "#777777"
 COVERING_GREY = "#c9ced3"
 
@@ -44,25 +40,6 @@ matplotlib.rcParams.update({
     "axes.titlesize": 9.5,
     "legend.fontsize": 8.5,
 })
-
-
-@dataclass(frozen=True)
-class Style:
-    """How one estimator is drawn in every figure."""
-
-    colour: str
-    marker: str
-    line: str
-
-
-def estimator_styles(estimators: Sequence[str]) -> dict[str, Style]:
-    """Colour, marker and line style per estimator, by position in the study.
-
-    Adding an estimator at the end keeps every other estimator's style.
-    """
-    k = len(PALETTE)
-    return {name: Style(PALETTE[i % k], MARKERS[i % len(MARKERS)], DASHES[(i // k) % len(DASHES)])
-            for i, name in enumerate(estimators)}
 
 
 _ID = re.compile(r'\bid="([^"]+)"')

@@ -21,7 +21,7 @@ import yaml
 
 from estbench.analyse.failures import failure_warnings, max_failed_share_of
 from estbench.report import data as report_data
-from estbench.report.figures import Style, estimator_styles
+from estbench.report.styles import Style, estimator_styles
 
 #: Up to this many DGM settings the report shows every setting in full (a table
 #: and figures each); above it the compact layout is used.
