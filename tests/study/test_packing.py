@@ -5,8 +5,8 @@ import pyarrow.parquet as pq
 from estbench.simulate.job import run_job, run_piece, shards_of_piece
 from estbench.study import jobs
 from estbench.study.load import study_from_mapping
-from estbench.study.packing import (AUTO_VALUES_PER_JOB, MIN_VALUES_PER_JOB, SPREAD_JOBS, Piece, pack,
-                                    pack_target)
+from estbench.study.packing import (AUTO_VALUES_PER_JOB, AUTO_VALUES_PER_PACK, MIN_VALUES_PER_JOB, SPREAD_JOBS,
+                                    Piece, pack, pack_target)
 
 from conftest import tiny_study, write_study
 
@@ -31,10 +31,14 @@ def test_pack_shares_the_work_evenly_in_order():
     assert max(job.values for job in packed) - min(job.values for job in packed) <= 60_000  # one or two pieces
 
 
-def test_large_pieces_stay_jobs_of_their_own():
+def test_large_pieces_stay_jobs_of_their_own_and_deep_studies_get_few_large_jobs():
     pieces = [Piece("a" * 16, b, 50, 50_000_000) for b in range(0, 500, 50)]
-    assert pack_target(sum(p.values for p in pieces)) == AUTO_VALUES_PER_JOB
     assert [len(job.pieces) for job in pack(pieces, AUTO_VALUES_PER_JOB)] == [1] * 10
+    # a deep study of 40 full pieces (2e9 values): 8 jobs of 5 pieces, capped at AUTO_VALUES_PER_PACK
+    deep = [Piece("b" * 16, b, 50, 50_000_000) for b in range(0, 2000, 50)]
+    assert pack_target(2_000_000_000) == 250_000_000 <= AUTO_VALUES_PER_PACK
+    assert [len(job.pieces) for job in pack(deep, pack_target(2_000_000_000))] == [5] * 8
+    assert pack_target(10**12) == AUTO_VALUES_PER_PACK
     # a mid-sized study is spread over SPREAD_JOBS jobs
     mid = [Piece(f"{i:016x}", 0, 1, 1_000_000) for i in range(80)]
     assert len(pack(mid, pack_target(80_000_000))) == SPREAD_JOBS

@@ -19,10 +19,13 @@ import math
 from dataclasses import dataclass
 from typing import Sequence
 
-#: Values (block_size x n per block) one piece, and one job, draws at most when
-#: ``blocks_per_job`` is 'auto': several seconds of work for cheap estimators,
-#: so a job's start-up stays a few per cent.
+#: Values (block_size x n per block) one piece draws at most when ``blocks_per_job``
+#: is 'auto': several seconds of work for cheap estimators. A piece's shards are
+#: committed as it ends, so a kill loses at most the pieces being computed.
 AUTO_VALUES_PER_JOB = 50_000_000
+#: Values one job draws at most when ``values_per_job`` is 'auto': a handful of
+#: pieces, so start-ups (about a CPU-second each) stay a few per cent of the work.
+AUTO_VALUES_PER_PACK = 400_000_000
 #: Jobs a study is spread over, when its work allows, so that a machine's cores
 #: (or a cluster's nodes) all get some; common practice, chosen by estbench.
 SPREAD_JOBS = 8
@@ -62,12 +65,12 @@ class Job:
 
 
 def pack_target(total_values: int) -> int:
-    """Values per job for a study drawing *total_values* in all (``blocks_per_job: auto``).
+    """Values per job for a study drawing *total_values* in all (``values_per_job: auto``).
 
-    At most ``AUTO_VALUES_PER_JOB``; smaller when that leaves fewer than
-    ``SPREAD_JOBS`` jobs, but never below ``MIN_VALUES_PER_JOB``.
+    The study spread over ``SPREAD_JOBS`` jobs, but at most ``AUTO_VALUES_PER_PACK``
+    and at least ``MIN_VALUES_PER_JOB`` per job.
     """
-    return min(AUTO_VALUES_PER_JOB, max(MIN_VALUES_PER_JOB, math.ceil(total_values / SPREAD_JOBS)))
+    return min(AUTO_VALUES_PER_PACK, max(MIN_VALUES_PER_JOB, math.ceil(total_values / SPREAD_JOBS)))
 
 
 def pack(pieces: Sequence[Piece], target: int) -> list[Job]:
