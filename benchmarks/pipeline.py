@@ -1,22 +1,30 @@
-"""Pipeline cost against the vectorised limit and the per-replicate loop, side by side.
+"""A whole cold ``estbench run`` against the hand-written single-process yardstick, deep and wide.
 
-    .venv/bin/python benchmarks/pipeline.py [--replicates 10000 100000] [--repeats 3]
-                                            [--with-million [--million-repeats 1]] [--cores 2]
+    .venv/bin/python benchmarks/pipeline.py [--deep 100000 [1000000 ...]] [--wide 200 ...]
+                                            [--repeats 3] [--cores 2] [--yardstick PATH]
 
-Reference study: normal data, n in {10, 20, 50, 100, 200, 500, 1000}, estimators
-mean, median, 10% trimmed mean and SD. For each replicate count it times, in one
-run and in alternation (median over --repeats):
+The yardstick (``../shared/bench/limit_full.py`` beside this checkout, written
+outside the project) computes in one process, with no files, the same outputs
+as the built-in estimators of the reference study: mean, median, 10% trimmed
+mean and SD, each with its SE, 95% interval and p-value as estbench defines
+them. Two shapes of study:
 
-- limit: one process draws every seed block once, with the study's own streams,
-  and applies the four estimators to it; no files, no Snakemake;
-- loop: the per-replicate script most studies start as (draw one dataset, apply
-  each estimator, append), timed on a subsample and scaled up linearly;
-- estbench: a cold ``estbench run`` in a fresh folder, all stages (shards,
-  ingest, report).
+- deep: ``limit_full.py R``: normal data, n in {10, 20, 50, 100, 200, 500, 1000},
+  R replicates each, blocks of 1000;
+- wide: ``limit_full.py wide K 10,50``: K normal locations x n in {10, 50},
+  1000 replicates each (2K scenarios).
 
-It prints the ratios the issue asks for and the largest simulation-job memory
-(recorded by each job in its record). Timings are wall-clock seconds
-on this machine; only the ratios are meant to travel.
+estbench runs the same study (same estimators, block size, sample sizes and
+replicates) with ``estbench run --cores N`` in a fresh folder: jobs, ingest,
+report, performance.csv, all of it, cold. Both are timed as the commands a user
+types, wall clock, in one run and in alternation (median over --repeats), so
+load changes hit both alike. The ratio estbench / limit_full is the figure to
+compare; 2 cores make 0.5 its floor for the simulation part.
+
+It also prints where estbench's time went (the span of the simulation jobs,
+ingest and report, from their logs), the number of jobs and the largest
+simulation-job memory (from the job records), and the start-up of one
+simulation job process.
 """
 
 from __future__ import annotations
@@ -32,19 +40,12 @@ import tempfile
 import time
 from pathlib import Path
 
-import numpy as np
 import yaml
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path[:0] = [str(ROOT / "workflow"), str(ROOT / "estimators")]
-
-from estbench.simulate.dgms import build_dgm  # noqa: E402
-from estbench.simulate.plugins import resolve, search_path  # noqa: E402
-from estbench.app.runner import snakemake_base  # noqa: E402
-from estbench.simulate.seeding import block_generator  # noqa: E402
-from estbench.study.load import study_from_mapping  # noqa: E402
-
-SAMPLE_SIZES = [10, 20, 50, 100, 200, 500, 1000]
+YARDSTICK = ROOT.parent / "shared" / "bench" / "limit_full.py"
+DEEP_SIZES = [10, 20, 50, 100, 200, 500, 1000]
+WIDE_SIZES = [10, 50]
 ESTIMATORS = {
     "mean": {"function": "location:mean", "target": "mean"},
     "median": {"function": "location:median", "target": "mean"},
@@ -53,112 +54,112 @@ ESTIMATORS = {
 }
 
 
-def reference_study(replicates: int) -> dict:
-    block = 1000
-    return {
-        "study": f"bench-{replicates}", "seed": 2026, "replicates": replicates,
-        "block_size": block,  # blocks_per_job: 'auto' (the default)
-        "sample_sizes": SAMPLE_SIZES,
-        "dgms": {"normal": {"distribution": "norm", "params": {"loc": 0.0, "scale": 1.0}}},
-        "estimators": ESTIMATORS, "reference": "mean",
-    }
+def deep_study(replicates: int) -> dict:
+    return {"study": f"deep-{replicates}", "seed": 6611, "replicates": replicates, "block_size": 1000,
+            "sample_sizes": DEEP_SIZES,
+            "dgms": {"normal": {"distribution": "norm", "params": {"loc": 0.0, "scale": 1.0}}},
+            "estimators": ESTIMATORS, "reference": "mean"}
 
 
-def time_limit(raw: dict) -> float:
-    """The vectorised limit: draw each block once, apply every estimator, keep nothing."""
-    study = study_from_mapping(raw)
-    fns = {name: resolve(e.function, search_path(None)) for name, e in study.estimators.items()}
+def wide_study(locations: int) -> dict:
+    return {"study": f"wide-{locations}", "seed": 6611, "replicates": 1000, "block_size": 1000,
+            "sample_sizes": WIDE_SIZES,
+            "dgms": {"normal": {"distribution": "norm",
+                                "params": {"loc": [float(j) for j in range(locations)], "scale": 1.0}}},
+            "estimators": ESTIMATORS, "reference": "mean"}
+
+
+def time_yardstick(path: Path, args: list[str]) -> float:
+    """Wall seconds of the yardstick command, cold (a new Python process, as typed)."""
     start = time.perf_counter()
-    for s in study.scenarios:
-        dgm = build_dgm(s.spec)
-        for b in range(study.n_blocks):
-            data = dgm.draw(block_generator(study.seed, s.spawn_key, b), study.block_size, s.n)
-            for name, e in study.estimators.items():
-                fns[name](data, **e.args)
+    subprocess.run([sys.executable, str(path), *args], check=True, capture_output=True)
     return time.perf_counter() - start
 
 
-def time_loop(raw: dict, subsample: int = 400) -> float:
-    """The common per-replicate script, timed on *subsample* replicates per n and scaled."""
-    from scipy import stats
-    rng = np.random.default_rng(raw["seed"])
-    start = time.perf_counter()
-    rows = []
-    for n in raw["sample_sizes"]:
-        for _ in range(subsample):
-            x = rng.normal(0.0, 1.0, size=n)
-            rows.append((n, "mean", float(np.mean(x))))
-            rows.append((n, "median", float(np.median(x))))
-            rows.append((n, "trimmed_10", float(stats.trim_mean(x, 0.1))))
-            rows.append((n, "sd", float(np.std(x, ddof=1))))
-    return (time.perf_counter() - start) * raw["replicates"] / subsample
+def _stage_seconds(out: Path) -> dict:
+    """Simulation span (first job start to last record), ingest and report seconds, from the logs."""
+    records = [json.loads(p.read_text()) for p in out.glob("jobs/*/*.json")]
+    ingest = json.loads((out / "logs" / "ingest.log").read_text().strip().splitlines()[-1])["seconds"]
+    report = float(re.search(r"written in ([0-9.]+) s", (out / "logs" / "report.log").read_text()).group(1))
+    logs = list(out.glob("logs/jobs/*/*.log"))
+    ends = [p.stat().st_mtime for p in out.glob("jobs/*/*.json")]
+    starts = [p.stat().st_ctime for p in logs]  # a job's log is created as its process starts
+    return {"jobs": len(records), "rss": max(r["max_rss_mb"] for r in records),
+            "simulate": max(ends) - min(starts), "ingest": ingest, "report": report}
 
 
 def time_estbench(raw: dict, cores: int) -> dict:
-    """Cold end-to-end run in a fresh folder.
-
-    Returns its wall seconds; the largest simulation-job RSS (MB, from the job
-    records); the work it had to do (the jobs' in-process seconds spread over
-    *cores*, plus the in-process seconds of ingest and report, from their logs);
-    and the time Snakemake takes to build the DAG (a dry run of the same study).
-    Wall minus work is what start-ups, scheduling and uneven load cost.
-    """
+    """Wall seconds of a cold ``estbench run`` in a fresh folder, and where they went."""
     with tempfile.TemporaryDirectory(prefix="estbench-bench-") as tmp:
         path = Path(tmp) / "study.yaml"
         path.write_text(yaml.safe_dump(raw, sort_keys=False))
         start = time.perf_counter()
-        subprocess.run([sys.executable, "-m", "estbench.app.cli", "run", str(path), "--cores", str(cores)],
+        subprocess.run([sys.executable, "-m", "estbench", "run", str(path), "--cores", str(cores)],
                        cwd=tmp, check=True, capture_output=True)
         seconds = time.perf_counter() - start
-        out = Path(tmp) / "results" / raw["study"]
-        records = [json.loads(p.read_text()) for p in out.glob("jobs/*/*.json")]
-        ingest = json.loads((out / "logs" / "ingest.log").read_text().strip().splitlines()[-1])["seconds"]
-        report = float(re.search(r"written in ([0-9.]+) s", (out / "logs" / "report.log").read_text()).group(1))
-        start = time.perf_counter()
-        subprocess.run([*snakemake_base(path, Path(tmp)), "--dry-run", "--quiet"], cwd=tmp, check=True,
-                       capture_output=True)
-        dag = time.perf_counter() - start
-    work = sum(r["seconds"] for r in records) / cores + ingest + report
-    return {"estbench": seconds, "rss": max(r["max_rss_mb"] for r in records), "work": work,
-            "jobs": len(records), "dag": dag}
+        return {"estbench": seconds, **_stage_seconds(Path(tmp) / "results" / raw["study"])}
+
+
+def job_start_up(repeats: int = 5) -> dict:
+    """Wall seconds of a simulation job process doing (almost) nothing, against bare Python + numpy."""
+    from estbench.study import jobs
+    from estbench.study.load import study_from_mapping
+    raw = deep_study(1000)
+    raw.update(sample_sizes=[10], block_size=10, replicates=10)
+    out = {"python": [], "job": []}
+    with tempfile.TemporaryDirectory(prefix="estbench-startup-") as tmp:
+        source = Path(tmp) / "study.yaml"
+        source.write_text(yaml.safe_dump(raw))
+        study = study_from_mapping(raw, source=source)
+        layout = study.layout(tmp)
+        jobs.write_job_specs(study, layout)
+        key = jobs.job_keys(study)[0]
+        cmd = [sys.executable, "-m", "estbench.simulate.job", "--spec", str(layout.job_spec(*key)),
+               *[a for d in study.search_dirs for a in ("--search-dir", d)], "--record", str(layout.job_record(*key))]
+        for _ in range(repeats):
+            for name, argv in (("python", [sys.executable, "-c", "import numpy"]), ("job", cmd)):
+                start = time.perf_counter()
+                subprocess.run(argv, check=True, capture_output=True, cwd=tmp)
+                out[name].append(time.perf_counter() - start)
+    return {k: statistics.median(v) for k, v in out.items()}
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--replicates", type=int, nargs="+", default=[10_000, 100_000])
-    parser.add_argument("--with-million", action="store_true", help="add the 10^6-replicate row")
+    parser.add_argument("--deep", type=int, nargs="*", default=[100_000], help="replicates per n (deep shape)")
+    parser.add_argument("--wide", type=int, nargs="*", default=[200], help="locations K (wide shape: 2K scenarios)")
     parser.add_argument("--repeats", type=int, default=3)
-    parser.add_argument("--million-repeats", type=int, default=1,
-                        help="repeats of the 10^6 row (each takes minutes)")
-    parser.add_argument("--cores", type=int, default=os.cpu_count() or 1)
+    parser.add_argument("--cores", type=int, default=2)
+    parser.add_argument("--yardstick", type=Path, default=YARDSTICK)
     args = parser.parse_args()
-    counts = args.replicates + ([1_000_000] if args.with_million else [])
-    print(f"machine: {os.cpu_count()} cores; estbench run --cores {args.cores}; "
-          f"{time.strftime('%Y-%m-%d %H:%M')}; medians of {args.repeats} repeats "
-          f"({args.million_repeats} at 10^6)")
-    results = {}
-    for reps in counts:
-        raw = reference_study(reps)
+    if not args.yardstick.is_file():
+        sys.exit(f"no yardstick at {args.yardstick}: pass --yardstick PATH to limit_full.py")
+    cases = ([(f"deep R={r:,}", deep_study(r), [str(r)]) for r in args.deep]
+             + [(f"wide K={k} ({2 * k} scenarios)", wide_study(k), ["wide", str(k), ",".join(map(str, WIDE_SIZES))])
+                for k in args.wide])
+    print(f"{time.strftime('%Y-%m-%d %H:%M')}; {os.cpu_count()} cores; estbench run --cores {args.cores}; "
+          f"medians of {args.repeats}; yardstick {args.yardstick}")
+    rows = []
+    for label, raw, yard_args in cases:
         runs: dict[str, list] = {}
-        for _ in range(args.million_repeats if reps == 1_000_000 else args.repeats):
-            # alternate, so load changes hit every variant alike
-            runs.setdefault("limit", []).append(time_limit(raw))
-            runs.setdefault("loop", []).append(time_loop(raw))
+        for _ in range(args.repeats):  # alternate, so load changes hit both alike
+            runs.setdefault("limit", []).append(time_yardstick(args.yardstick, yard_args))
             for key, value in time_estbench(raw, args.cores).items():
                 runs.setdefault(key, []).append(value)
-        results[reps] = {k: statistics.median(v) for k, v in runs.items()}
-    header = ("replicates", "jobs", "limit s", "loop s", "estbench s", "estbench/limit", "loop/estbench",
-              "max job RSS MB", "overhead share", "DAG s")
-    print(" | ".join(header))
-    for reps, r in results.items():
-        print(" | ".join([f"{reps:,}", f"{r['jobs']:.0f}", f"{r['limit']:.1f}", f"{r['loop']:.1f}",
-                          f"{r['estbench']:.1f}", f"{r['estbench'] / r['limit']:.2f}",
-                          f"{r['loop'] / r['estbench']:.1f}", f"{r['rss']:.0f}",
-                          f"{1 - r['work'] / r['estbench']:.0%}", f"{r['dag']:.1f}"]))
-    if 100_000 in results and 1_000_000 in results:
-        print(f"growth 10^5 -> 10^6: {results[1_000_000]['estbench'] / results[100_000]['estbench']:.2f}x")
-    print("overhead share: 1 - (job seconds / cores + ingest + report) / wall: start-ups of the CLI, "
-          "Snakemake and every job, scheduling and uneven load. DAG s: Snakemake's dry run of the study.")
+        rows.append((label, {k: statistics.median(v) for k, v in runs.items()}))
+        print(f"  {label}: done", flush=True)
+    head = ("study", "limit_full s", "estbench s", "estbench / limit_full", "jobs", "simulate s",
+            "ingest s", "report s", "max job RSS MB")
+    print(" | ".join(head))
+    for label, r in rows:
+        print(" | ".join([label, f"{r['limit']:.1f}", f"{r['estbench']:.1f}", f"{r['estbench'] / r['limit']:.2f}",
+                          f"{r['jobs']:.0f}", f"{r['simulate']:.1f}", f"{r['ingest']:.1f}", f"{r['report']:.1f}",
+                          f"{r['rss']:.0f}"]))
+    startup = job_start_up()
+    print(f"simulation job start-up: {startup['job']:.2f} s for a one-block job process "
+          f"(bare `python -c 'import numpy'`: {startup['python']:.2f} s)")
+    print("simulate s: first job start to last job record; the rest of estbench s is the CLI, "
+          "Snakemake's DAG and scheduling.")
 
 
 if __name__ == "__main__":
